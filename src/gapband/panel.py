@@ -129,8 +129,8 @@ def from_long(
     ----------
     table : DataFrame
         Columns ``time`` (datetime64, naive), ``series`` (str), ``value``
-        (float64, NaN = missing) and ``line`` (the source line of each row,
-        used in messages).
+        (float64, NaN = missing) and ``where`` (text locating each row in
+        the source, such as ``"line 12"``, used in messages).
     source : str
         File name used in messages.
     step : str, optional
@@ -229,7 +229,7 @@ def _snap_to_grid(
             "to the nearest grid point, or give --step"
         )
         raise TimestampError(
-            f"{source}, line {row['line']}: timestamp {row['time']} is off the {step} grid "
+            f"{source}, {row['where']}: timestamp {row['time']} is off the {step} grid "
             f"({int(too_far.sum())} such rows); {hint}"
         )
     table = table.copy()
@@ -244,9 +244,9 @@ def _resolve_duplicates(
     if not dup.any():
         return table, 0
     if duplicates == "error":
-        first = table[dup].sort_values(["series", "time", "line"]).head(6)
+        first = table[dup].sort_values(["series", "time"], kind="stable").head(6)
         listed = "; ".join(
-            f"line {r.line}: series {r.series!r} at {r.time}" for r in first.itertuples()
+            f"{r.where}: series {r.series!r} at {r.time}" for r in first.itertuples()
         )
         raise DuplicateError(
             f"{source}: {int(dup.sum())} rows repeat a (time, series) pair, first: {listed}. "
@@ -255,7 +255,7 @@ def _resolve_duplicates(
     # Average the observed values of a repeated pair; a pair with only missing
     # values stays missing.
     merged = table.groupby(["time", "series"], sort=False, as_index=False).agg(
-        value=("value", "mean"), line=("line", "min")
+        value=("value", "mean"), where=("where", "first")
     )
     return merged, int(dup.sum() - table[dup].drop_duplicates(["time", "series"]).shape[0])
 

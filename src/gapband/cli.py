@@ -1,0 +1,157 @@
+"""The ``gapband`` command line: parse, call the API, print.
+
+Exit codes: 0 ok, 1 internal error, 2 usage error, 3 input error.
+"""
+
+from __future__ import annotations
+
+import functools
+import sys
+from pathlib import Path
+
+import click
+from rich.console import Console
+from rich.table import Table
+
+import gapband
+from gapband.errors import GapbandError, InputError, SpecError, UsageError
+
+EXIT_INTERNAL, EXIT_USAGE, EXIT_INPUT = 1, 2, 3
+
+console = Console(width=None if sys.stdout.isatty() else 120)
+errors = Console(stderr=True)
+
+
+def read_options(command):
+    """Options shared by every command that reads a station file."""
+    options = [
+        click.argument("input_path", metavar="INPUT", type=click.Path(path_type=Path)),
+        click.option("--layout", type=click.Choice(["auto", "long", "wide"]), default="auto",
+                     show_default=True,
+                     help="Long: rows of (time, series, value); wide: one column per series."),
+        click.option("--time-col", help="Name of the time column (default: detected)."),
+        click.option("--series-col", help="Name of the series column in long layout."),
+        click.option("--value-col", help="Name of the value column in long layout."),
+        click.option("--variable", help="NetCDF variable to read."),
+        click.option("--step", help="Grid step, e.g. 'h', '30min', 'D', 'MS' (default: inferred)."),
+        click.option("--duplicates", type=click.Choice(["error", "mean"]), default="error",
+                     show_default=True, help="Repeated (time, series) pairs: stop, or average."),
+        click.option("--snap", metavar="DURATION",
+                     help="Move timestamps within DURATION of the grid onto it, e.g. '5min'."),
+        click.option("--missing-token", "missing_tokens", multiple=True, metavar="TEXT",
+                     help="Extra cell text meaning missing, e.g. -9999 (repeatable)."),
+        click.option("--units", help="Units of the values (NetCDF files carry their own)."),
+    ]
+    for option in reversed(options):
+        command = option(command)
+    return command
+
+
+def handle_errors(command):
+    """Map gapband's errors to exit codes and one clear line on stderr."""
+
+    @functools.wraps(command)
+    def wrapper(*args, **kwargs):
+        try:
+            return command(*args, **kwargs)
+        except (InputError, SpecError) as err:
+            errors.print(f"[bold red]input error:[/] {err}", highlight=False)
+            sys.exit(EXIT_INPUT)
+        except UsageError as err:
+            errors.print(f"[bold red]usage error:[/] {err}", highlight=False)
+            sys.exit(EXIT_USAGE)
+        except GapbandError as err:
+            errors.print(f"[bold red]error:[/] {err}", highlight=False)
+            sys.exit(EXIT_INTERNAL)
+
+    return wrapper
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(gapband.__version__, prog_name="gapband")
+def cli():
+    """Probabilistic gap filling of monitoring time series.
+
+    Filled values are estimates, not measurements: whether they may count
+    toward data capture is for your regulator's rules to decide.
+    """
+
+
+@cli.command()
+@read_options
+@click.option("--json", "json_path", type=click.Path(path_type=Path),
+              help="Also write the figures as JSON to this file.")
+@click.option("--capture-threshold", type=click.FloatRange(0, 100), default=90.0,
+              show_default=True, metavar="PCT",
+              help="Minimum data capture (%) a series must reach.")
+@handle_errors
+def inspect(input_path, json_path, capture_threshold, **read_kw):
+    """Report data capture and gaps per series of INPUT."""
+    panel = gapband.read(input_path, **read_kw)
+    figures = gapband.inspect(panel, capture_threshold=capture_threshold)
+    figures["alignment"] = panel.attrs.get("alignment", "")
+    console.print(capture_table(figures))
+    console.print(f"[dim]{figures['alignment']}[/]", highlight=False)
+    if json_path is not None:
+        from gapband.outputs import write_json
+
+        write_json(figures, json_path)
+        console.print(f"figures written to {json_path}", highlight=False)
+
+
+def capture_table(figures: dict) -> Table:
+    """The inspect figures as a terminal table."""
+    threshold = figures["capture_threshold"]
+    table = Table(
+        title=f"{figures['source']}: {_short(figures['start'])} to {_short(figures['end'])}, "
+        f"step {figures['step']}",
+        caption=f"capture threshold {threshold:g} %; gaps by length in steps: "
+        "1 | 2-6 | 7-24 | 25-168 | >168",
+    )
+    for header in ("series", "observed", "capture %", "meets", "gaps", "longest gap",
+                   "gaps by length", "first obs", "last obs"):
+        table.add_column(header, justify="left" if header == "series" else "right")
+    for row in figures["series"]:
+        table.add_row(
+            row["series"], f"{row['observed']}/{row['expected']}",
+            f"{row['capture_pct']:.1f}",
+            "[green]yes[/]" if row["meets_threshold"] else "[red]no[/]",
+            str(row["n_gaps"]), row["longest_gap_duration"],
+            _bins(row["gap_histogram"]),
+            _short(row["first_observation"]), _short(row["last_observation"]),
+        )
+    overall = figures["overall"]
+    table.add_section()
+    table.add_row(
+        "all", f"{overall['observed']}/{overall['expected']}",
+        f"{overall['capture_pct']:.1f}",
+        f"{overall['series_meeting_threshold']}/{overall['series']}",
+        str(overall["n_gaps"]), f"{overall['longest_gap_steps']} steps",
+        _bins(overall["gap_histogram"]), "", "",
+    )
+    return table
+
+
+def _bins(histogram: dict[str, int]) -> str:
+    return " | ".join(str(v) for v in histogram.values())
+
+
+def _short(iso: str | None) -> str:
+    """ISO timestamp without seconds, '-' when absent."""
+    return "-" if iso is None else iso.replace("T", " ")[:16]
+
+
+def main(argv: list[str] | None = None) -> None:
+    """Entry point of the ``gapband`` console script."""
+    try:
+        cli.main(args=argv, prog_name="gapband", standalone_mode=True)
+    except SystemExit:
+        raise
+    except Exception as err:  # an unexpected failure: say so plainly, exit 1
+        errors.print(f"[bold red]internal error:[/] {type(err).__name__}: {err}", highlight=False)
+        errors.print("please report this with the command you ran", highlight=False)
+        sys.exit(EXIT_INTERNAL)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main(sys.argv[1:])
