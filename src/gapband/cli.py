@@ -18,7 +18,7 @@ from gapband.errors import GapbandError, InputError, SpecError, UsageError
 
 EXIT_INTERNAL, EXIT_USAGE, EXIT_INPUT = 1, 2, 3
 
-console = Console(width=None if sys.stdout.isatty() else 120)
+console = Console(width=None if sys.stdout.isatty() else 140)
 errors = Console(stderr=True)
 
 
@@ -99,6 +99,27 @@ def inspect(input_path, json_path, capture_threshold, **read_kw):
         console.print(f"figures written to {json_path}", highlight=False)
 
 
+@cli.command()
+@click.option("--out", "out_dir", type=click.Path(path_type=Path), default=Path("gapband-demo"),
+              show_default=True, help="Folder for the demo data and results.")
+@click.option("--quick", is_flag=True, help="A small slice (4 stations, 4 weeks) for a fast run.")
+@click.option("--overwrite", is_flag=True, help="Replace results of an earlier demo run.")
+@handle_errors
+def demo(out_dir, quick, overwrite):
+    """Run the whole job on an invented network of monitoring stations."""
+    from gapband.demo.generate import write_network
+    from gapband.outputs import prepare_dir
+
+    prepare_dir(out_dir, ["tolmere_no2.csv", "tolmere_temp.csv", "tolmere_truth.csv"],
+                overwrite=overwrite)
+    days, stations = (28, 4) if quick else (None, None)
+    data = write_network(out_dir, days=days, n_stations=stations)
+    console.print(f"demo network written to {out_dir}/", highlight=False)
+    for path, units in ((data[0], "µg/m³"), (data[1], "°C")):
+        panel = gapband.read(path, units=units)
+        console.print(capture_table(gapband.inspect(panel)))
+
+
 def capture_table(figures: dict) -> Table:
     """The inspect figures as a terminal table."""
     threshold = figures["capture_threshold"]
@@ -110,7 +131,7 @@ def capture_table(figures: dict) -> Table:
     )
     for header in ("series", "observed", "capture %", "meets", "gaps", "longest gap",
                    "gaps by length", "first obs", "last obs"):
-        table.add_column(header, justify="left" if header == "series" else "right")
+        table.add_column(header, justify="left" if header == "series" else "right", no_wrap=True)
     for row in figures["series"]:
         table.add_row(
             row["series"], f"{row['observed']}/{row['expected']}",

@@ -1,0 +1,1 @@
+"""The invented Tolmere Basin network used by ``gapband demo`` (installed as gapband.demo)."""

@@ -1,0 +1,263 @@
+"""Writing the fill outputs: ``filled.nc``, the long table and JSON summaries.
+
+Every writer goes through :func:`atomic_path`: the file is written under a
+temporary name in the target folder and renamed onto the target only once
+complete, so a crash or an error never leaves a half-written output, and an
+existing output survives a failed rewrite.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import secrets
+from collections.abc import Iterable, Iterator
+from contextlib import contextmanager
+from datetime import date, datetime, timedelta
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from gapband.errors import UsageError
+from gapband.flags import FLAG_MEANINGS, interval_levels
+
+CONVENTIONS = "CF-1.10"
+
+_LONG_NAMES = {
+    "filled": "observed value, or posterior median where missing",
+    "fill_mean": "posterior predictive mean",
+    "fill_median": "posterior predictive median",
+    "fill_sd": "posterior predictive standard deviation",
+}
+_TABLE_SUFFIXES = (".csv", ".parquet")
+
+
+@contextmanager
+def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
+    """Yield a temporary path next to ``path``; move it onto ``path`` on success.
+
+    The temporary file (``.<name>.tmp-<random>`` in the same folder, so the
+    final :func:`os.replace` is a rename on one file system) is removed when
+    the block raises, and ``path`` is then left as it was.
+    """
+    target = Path(path)
+    tmp = target.with_name(f".{target.name}.tmp-{secrets.token_hex(6)}")
+    try:
+        yield tmp
+        os.replace(tmp, target)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+
+
+def prepare_dir(out_dir: str | os.PathLike, names: Iterable[str], overwrite: bool) -> Path:
+    """Create the output folder, refusing to replace existing outputs.
+
+    Parameters
+    ----------
+    out_dir : path
+        The output folder; created with its parents when absent.
+    names : iterable of str
+        File names the run will write into it.
+    overwrite : bool
+        Allow replacing files that already exist.
+
+    Returns
+    -------
+    Path
+        The output folder.
+
+    Raises
+    ------
+    UsageError
+        ``out_dir`` is a file, or some of ``names`` exist and ``overwrite`` is False.
+    """
+    folder = Path(out_dir)
+    if folder.exists() and not folder.is_dir():
+        raise UsageError(f"output folder {str(folder)!r} is a file; choose a folder path")
+    existing = [n for n in names if (folder / n).exists()]
+    if existing and not overwrite:
+        raise UsageError(
+            f"{str(folder)!r} already holds {', '.join(existing)}; pass --overwrite to "
+            "replace them, or choose another output folder"
+        )
+    folder.mkdir(parents=True, exist_ok=True)
+    return folder
+
+
+def write_netcdf(result: xr.Dataset, path: str | os.PathLike) -> Path:
+    """Write the whole result as a CF-1.10 NetCDF-4 file (engine h5netcdf).
+
+    Units of ``value`` are copied to ``filled`` and every fill summary, a
+    ``long_name`` is added where absent, time is encoded as integer offsets
+    ("<unit> since <date>"), and attributes that are not strings, numbers or
+    numeric arrays (dicts, lists, booleans, None) are stored as JSON text,
+    because NetCDF attributes can hold only those.
+    """
+    ds = _cf_dataset(result)
+    encoding = {
+        name: {"zlib": True, "complevel": 4, "shuffle": True} for name in ds.data_vars
+    }
+    encoding["time"] = {"dtype": "int64", "calendar": "proleptic_gregorian"}
+    with atomic_path(path) as tmp:
+        ds.to_netcdf(tmp, engine="h5netcdf", encoding=encoding)
+    return Path(path)
+
+
+def long_table(result: xr.Dataset) -> pd.DataFrame:
+    """The result as a long table, one row per (series, time), series by series.
+
+    Columns: ``time, series, observed, filled, sd, lower_<L>, upper_<L>`` (per
+    level, increasing) and ``flag`` (the flag meaning as text). ``sd`` and the
+    bounds are empty for observed and not-filled cells.
+    """
+    absent = [n for n in ("value", "filled", "fill_sd", "fill_flag") if n not in result]
+    if absent:
+        raise UsageError(
+            f"the result lacks {', '.join(absent)}; write the Dataset returned by flags.assign"
+        )
+    ds = result.transpose("series", "time", ...)
+    n_series, n_time = ds.sizes["series"], ds.sizes["time"]
+    missing = ds["value"].isnull().values
+
+    def fill_only(name: str) -> np.ndarray:
+        return np.where(missing, ds[name].values, np.nan).ravel()
+
+    columns: dict[str, np.ndarray] = {
+        "time": np.tile(ds["time"].values, n_series),
+        "series": np.repeat(ds["series"].values.astype(str), n_time),
+        "observed": ds["value"].values.ravel(),
+        "filled": ds["filled"].values.ravel(),
+        "sd": fill_only("fill_sd"),
+    }
+    for level in interval_levels(ds):
+        columns[f"lower_{level}"] = fill_only(f"lower_{level}")
+        columns[f"upper_{level}"] = fill_only(f"upper_{level}")
+    columns["flag"] = np.asarray(FLAG_MEANINGS)[ds["fill_flag"].values.ravel()]
+    return pd.DataFrame(columns)
+
+
+def write_table(result: xr.Dataset, path: str | os.PathLike) -> Path:
+    """Write :func:`long_table` as CSV or Parquet, chosen by the file suffix.
+
+    CSV holds time as ISO-8601 text and floats in their shortest exact form
+    (``repr``), which pandas' default parser reads back bit for bit; empty
+    fields are missing. Parquet keeps time as a timestamp.
+
+    Raises
+    ------
+    UsageError
+        The suffix is neither ``.csv`` nor ``.parquet``.
+    """
+    target = Path(path)
+    suffix = target.suffix.lower()
+    if suffix not in _TABLE_SUFFIXES:
+        raise UsageError(
+            f"table file {str(target)!r} must end in {' or '.join(_TABLE_SUFFIXES)}"
+        )
+    table = long_table(result)
+    with atomic_path(target) as tmp:
+        if suffix == ".csv":
+            table["time"] = _iso(table["time"].to_numpy())
+            # float_format stays None: pandas then writes repr(), the shortest
+            # text that reads back to the same double.
+            table.to_csv(tmp, index=False, na_rep="", lineterminator="\n")
+        else:
+            table.to_parquet(tmp, index=False)
+    return target
+
+
+def write_json(obj: object, path: str | os.PathLike) -> Path:
+    """Write ``obj`` as UTF-8 JSON, indented 2, keys in their given order.
+
+    numpy scalars and arrays become Python numbers and lists, dates ISO-8601
+    text, NaN and infinities ``null`` (JSON has no NaN).
+    """
+    text = json.dumps(jsonable(obj), indent=2, ensure_ascii=False, allow_nan=False) + "\n"
+    with atomic_path(path) as tmp:
+        tmp.write_text(text, encoding="utf-8")
+    return Path(path)
+
+
+def jsonable(obj: object) -> object:
+    """Convert ``obj`` into plain JSON types (see :func:`write_json`).
+
+    Raises
+    ------
+    TypeError
+        An object of a type JSON cannot represent.
+    """
+    if isinstance(obj, dict):
+        return {str(k): jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, list | tuple):
+        return [jsonable(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return jsonable(obj.tolist())
+    if obj is None or obj is pd.NaT:
+        return None
+    if isinstance(obj, np.datetime64):
+        return None if np.isnat(obj) else pd.Timestamp(obj).isoformat()
+    if isinstance(obj, np.timedelta64):
+        return None if np.isnat(obj) else pd.Timedelta(obj).isoformat()
+    if isinstance(obj, np.generic):
+        return jsonable(obj.item())
+    if isinstance(obj, float):
+        return obj if math.isfinite(obj) else None
+    if isinstance(obj, str | int):
+        return obj
+    if isinstance(obj, datetime | date):
+        return obj.isoformat()
+    if isinstance(obj, timedelta):
+        return pd.Timedelta(obj).isoformat()
+    if isinstance(obj, os.PathLike):
+        return os.fspath(obj)
+    raise TypeError(f"cannot write {type(obj).__name__} {obj!r} as JSON")
+
+
+def _cf_dataset(result: xr.Dataset) -> xr.Dataset:
+    ds = result.drop_encoding()
+    units = result["value"].attrs.get("units") if "value" in result else None
+    for name in ds.variables:
+        attrs = {k: _netcdf_attr(v) for k, v in ds[name].attrs.items()}
+        if _is_fill_variable(str(name)):
+            attrs.setdefault("long_name", _long_name(str(name)))
+            if units is not None:
+                attrs["units"] = units
+        ds[name].attrs = attrs
+    ds["time"].attrs.update({"standard_name": "time", "long_name": "time", "axis": "T"})
+    ds["series"].attrs.setdefault("long_name", "series id")
+    ds.attrs = {k: _netcdf_attr(v) for k, v in result.attrs.items()}
+    ds.attrs["Conventions"] = CONVENTIONS
+    return ds
+
+
+def _is_fill_variable(name: str) -> bool:
+    return name != "fill_flag" and (
+        name == "filled" or name.startswith(("fill_", "lower_", "upper_"))
+    )
+
+
+def _long_name(name: str) -> str:
+    if name in _LONG_NAMES:
+        return _LONG_NAMES[name]
+    side, level = name.split("_", 1)
+    return f"{side} bound of the central {level}% posterior predictive interval"
+
+
+def _netcdf_attr(value: object) -> object:
+    if isinstance(value, np.ndarray) and value.dtype.kind in "iuf":
+        return value
+    if isinstance(value, str | int | float | np.integer | np.floating) and not isinstance(
+        value, bool
+    ):
+        return value
+    plain = jsonable(value)
+    return plain if isinstance(plain, str) else json.dumps(plain, ensure_ascii=False)
+
+
+def _iso(times: np.ndarray) -> np.ndarray:
+    whole_seconds = (times.astype("datetime64[ns]").astype("int64") % 1_000_000_000 == 0).all()
+    return np.datetime_as_string(times, unit="s" if whole_seconds else "ns")
