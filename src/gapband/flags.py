@@ -44,7 +44,7 @@ _SUMMARY_PREFIXES = ("fill_", "lower_", "upper_")
 
 
 def interval_levels(result: xr.Dataset) -> tuple[str, ...]:
-    """Names of the interval levels present, as written in ``lower_<L>``, increasing.
+    """Return the interval levels present, named as in ``lower_<L>``, increasing.
 
     A level counts only when both ``lower_<L>`` and ``upper_<L>`` exist.
     """
@@ -57,7 +57,7 @@ def interval_levels(result: xr.Dataset) -> tuple[str, ...]:
 
 
 def spread(result: xr.Dataset) -> xr.DataArray:
-    """Spread of each series' observed values: the 5-95 % inter-quantile range.
+    """Return the spread of each series' observed values: the 5-95 % quantile range.
 
     A quantile range rather than the sd, because monitoring series are skewed
     and spiky and one spike should not make every interval look narrow. It is
@@ -75,7 +75,7 @@ def spread(result: xr.Dataset) -> xr.DataArray:
         # A series without observations has no spread; its NaN is the answer.
         warnings.simplefilter("ignore", RuntimeWarning)
         q = result["value"].quantile([lo, hi], dim="time", skipna=True)
-    return (q.sel(quantile=hi) - q.sel(quantile=lo)).drop_vars("quantile")
+    return q.sel(quantile=hi, drop=True) - q.sel(quantile=lo, drop=True)
 
 
 def assign(
@@ -176,7 +176,7 @@ def assign(
 
 
 def flag_counts(result: xr.Dataset) -> dict:
-    """Cells per flag, overall and per series, JSON-ready.
+    """Count the cells per flag, overall and per series, JSON-ready.
 
     Returns
     -------
@@ -186,29 +186,25 @@ def flag_counts(result: xr.Dataset) -> dict:
     """
     _require(result, ["fill_flag"])
     flag = result["fill_flag"].transpose("series", "time").values
-    per_series = {
-        str(name): {m: int((flag[i] == v).sum()) for m, v in zip(FLAG_MEANINGS, FLAG_VALUES)}
-        for i, name in enumerate(result["series"].values)
-    }
-    overall = {m: int((flag == v).sum()) for m, v in zip(FLAG_MEANINGS, FLAG_VALUES)}
-    return {"overall": overall, "series": per_series}
+    def count(cells: np.ndarray) -> dict[str, int]:
+        return {
+            m: int((cells == v).sum()) for m, v in zip(FLAG_MEANINGS, FLAG_VALUES, strict=True)
+        }
+
+    per_series = {str(name): count(flag[i]) for i, name in enumerate(result["series"].values)}
+    return {"overall": count(flag), "series": per_series}
 
 
 def _width(result: xr.Dataset, level: float) -> xr.DataArray:
     available = interval_levels(result)
-    try:
-        wanted = float(level)
-    except (TypeError, ValueError):
-        wanted = None
-    match = [name for name in available if wanted is not None and float(name) == wanted]
-    if not match:
-        listed = ", ".join(available) or "none"
-        raise UsageError(
-            f"level {level!r} is not among the computed interval levels ({listed}); "
-            "pick one of those for the width rules, or compute that level when filling"
-        )
-    name = match[0]
-    return result[f"upper_{name}"] - result[f"lower_{name}"]
+    for name in available:
+        if isinstance(level, int | float | np.number) and float(name) == level:
+            return result[f"upper_{name}"] - result[f"lower_{name}"]
+    raise UsageError(
+        f"level {level!r} is not among the computed interval levels "
+        f"({', '.join(available) or 'none'}); pick one of those for the width rules, "
+        "or compute that level when filling"
+    )
 
 
 def _summary_names(result: xr.Dataset) -> list[str]:

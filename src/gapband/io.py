@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from gapband.errors import InputError, TimestampError, ValueParseError
+from gapband.errors import InputError, TimestampError, UsageError, ValueParseError
 from gapband.panel import from_long
 
 #: Cell texts read as missing (compared case-insensitively, after trimming).
@@ -97,7 +97,11 @@ def read(
     ------
     InputError
         With the file, line/row and column named, and what to do.
+    UsageError
+        An option has an invalid value (layout, step, snap, duplicates).
     """
+    if layout not in ("auto", "long", "wide"):
+        raise UsageError(f"layout={layout!r}: use 'auto', 'long' or 'wide'")
     path = Path(path)
     options = ReadOptions(
         layout=layout,
@@ -181,7 +185,7 @@ def _frame_table(
     where = np.array([f"{unit} {i + first}" for i in range(len(frame))], dtype=object)
     times = parse_times(frame[time_col], where, name, time_col)
     attrs = {}
-    offsets = utc_offsets(frame[time_col]) if not _is_datetime(frame[time_col]) else []
+    offsets = utc_offsets(frame[time_col])
     if offsets:
         attrs = {"timezone": "UTC", "input_utc_offsets": ", ".join(offsets)}
     layout = options.layout
@@ -312,7 +316,11 @@ def _no_missing_times(
 
 
 def utc_offsets(column: pd.Series) -> list[str]:
-    """The distinct UTC offsets written in a text column of timestamps."""
+    """The distinct UTC offsets of a column of timestamps (text or zone-aware)."""
+    if _is_datetime(column):
+        if getattr(column.dt, "tz", None) is None:
+            return []
+        return sorted({_colon(z) for z in column.dropna().dt.strftime("%z")})
     found = column.astype(str).str.strip().str.extract(f"({_ZONE.pattern})", re.IGNORECASE,
                                                          expand=False).dropna()
     return sorted({"+00:00" if z.upper() == "Z" else _colon(z) for z in found})

@@ -99,7 +99,9 @@ def write_netcdf(result: xr.Dataset, path: str | os.PathLike) -> Path:
     """
     ds = _cf_dataset(result)
     encoding = {
-        name: {"zlib": True, "complevel": 4, "shuffle": True} for name in ds.data_vars
+        name: {"zlib": True, "complevel": 4, "shuffle": True}
+        for name, var in ds.data_vars.items()
+        if var.ndim and var.dtype.kind in "iuf"
     }
     encoding["time"] = {"dtype": "int64", "calendar": "proleptic_gregorian"}
     with atomic_path(path) as tmp:
@@ -108,7 +110,7 @@ def write_netcdf(result: xr.Dataset, path: str | os.PathLike) -> Path:
 
 
 def long_table(result: xr.Dataset) -> pd.DataFrame:
-    """The result as a long table, one row per (series, time), series by series.
+    """Return the result as a long table, one row per cell, series by series.
 
     Columns: ``time, series, observed, filled, sd, lower_<L>, upper_<L>`` (per
     level, increasing) and ``flag`` (the flag meaning as text). ``sd`` and the

@@ -17,7 +17,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from gapband.errors import DuplicateError, InputError, TimestampError
+from gapband.errors import DuplicateError, InputError, TimestampError, UsageError
 
 #: Upper edges (inclusive, in grid steps) of the gap-length histogram bins.
 GAP_BINS: tuple[tuple[str, int, float], ...] = (
@@ -49,14 +49,67 @@ def step_of(panel: xr.Dataset) -> pd.Timedelta:
     return nominal_step(panel.attrs["step"])
 
 
+def fixed_duration(offset: pd.DateOffset) -> pd.Timedelta | None:
+    """The duration of a fixed-length offset (hours, days...), None for calendar ones."""
+    # pandas 3 no longer counts Day as a Tick, but a grid day is 24 hours here.
+    if isinstance(offset, pd.offsets.Day):
+        return pd.Timedelta(days=offset.n)
+    if isinstance(offset, pd.offsets.Tick):
+        return pd.Timedelta(offset.nanos)
+    return None
+
+
 def nominal_step(step: str) -> pd.Timedelta:
     """Nominal duration of a pandas frequency string."""
     offset = pd.tseries.frequencies.to_offset(step)
-    if isinstance(offset, pd.offsets.Tick):
-        return pd.Timedelta(offset)
+    fixed = fixed_duration(offset)
+    if fixed is not None:
+        return fixed
     if isinstance(offset, pd.offsets.MonthBegin | pd.offsets.MonthEnd):
         return _MEAN_MONTH * offset.n
     raise InputError(f"unsupported time step {step!r}: use a fixed step or month starts")
+
+
+def check_step(step: str) -> str:
+    """Return ``step`` if the grid can use it: a fixed step or month starts.
+
+    Raises
+    ------
+    UsageError
+        ``step`` is not a pandas frequency, or one the grid cannot follow
+        (weeks, month ends, every second month...).
+    """
+    try:
+        offset = pd.tseries.frequencies.to_offset(step)
+    except (TypeError, ValueError):
+        raise UsageError(
+            f"time step {step!r} is not a frequency; use e.g. 'h', '30min', 'D' or 'MS'"
+        ) from None
+    duration = fixed_duration(offset)
+    fixed = duration is not None and duration > pd.Timedelta(0)
+    if not (fixed or (isinstance(offset, pd.offsets.MonthBegin) and offset.n == 1)):
+        raise UsageError(
+            f"unsupported time step {step!r}: use a fixed step ('h', '30min', 'D') or "
+            "month starts ('MS')"
+        )
+    return step
+
+
+def check_snap(snap: str) -> pd.Timedelta:
+    """Parse a snapping tolerance such as ``"5min"``.
+
+    Raises
+    ------
+    UsageError
+        ``snap`` is not a non-negative duration.
+    """
+    try:
+        tolerance = pd.Timedelta(snap)
+    except (TypeError, ValueError):
+        tolerance = pd.NaT
+    if pd.isna(tolerance) or tolerance < pd.Timedelta(0):
+        raise UsageError(f"snapping tolerance {snap!r} is not a duration; use e.g. '5min'")
+    return tolerance
 
 
 def make_panel(
@@ -146,10 +199,17 @@ def from_long(
     Raises
     ------
     DuplicateError, TimestampError, InputError
+    UsageError
+        ``step``, ``snap`` or ``duplicates`` has an invalid value.
     """
+    if duplicates not in ("error", "mean"):
+        raise UsageError(f"duplicates={duplicates!r}: use 'error' or 'mean'")
+    if snap is not None:
+        check_snap(snap)
     if table.empty:
         raise InputError(f"{source}: no data rows; the file holds only a header or nothing")
-    step = step or infer_step(pd.DatetimeIndex(table["time"]), source)
+    n_rows = len(table)
+    step = check_step(step) if step else infer_step(pd.DatetimeIndex(table["time"]), source)
     table, n_snapped = _snap_to_grid(table, step, snap, source)
     table, n_merged = _resolve_duplicates(table, duplicates, source)
 
@@ -173,7 +233,7 @@ def from_long(
     empty = tuple(str(s) for s in panel["series"].values[observed.values == 0])
     report = Alignment(
         step=step,
-        n_rows=len(table),
+        n_rows=n_rows,
         n_grid_added=int(n_added),
         n_duplicates_merged=n_merged,
         n_snapped=n_snapped,
@@ -200,12 +260,15 @@ def _snap_to_grid(
     table: pd.DataFrame, step: str, snap: str | None, source: str
 ) -> tuple[pd.DataFrame, int]:
     times = pd.DatetimeIndex(table["time"])
-    origin = times.min()
-    offset = pd.tseries.frequencies.to_offset(step)
-    if isinstance(offset, pd.offsets.Tick):
-        width = pd.Timedelta(offset).value
-        rel = times.asi8 - origin.value
-        nearest = origin.value + np.round(rel / width).astype("int64") * width
+    fixed = fixed_duration(pd.tseries.frequencies.to_offset(step))
+    if fixed is not None:
+        width = fixed.value
+        # Anchor the grid on the most common phase, so that an off-grid first
+        # timestamp cannot shift the whole grid.
+        phase = (times.asi8 - times.min().value) % width
+        origin = times.min().value + int(pd.Series(phase).mode().min())
+        rel = times.asi8 - origin
+        nearest = origin + np.round(rel / width).astype("int64") * width
         on_grid = pd.DatetimeIndex(nearest)
     else:  # month starts: the nearest month start
         floor = times.to_period("M").to_timestamp()

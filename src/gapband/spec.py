@@ -302,7 +302,7 @@ def _reject_unknown(data: dict, known: set[str], prefix: str, source: str) -> No
     unknown = sorted(set(data) - known)
     if unknown:
         raise SpecError(
-            f"{source}: unknown key {prefix}{unknown[0]!r}; allowed keys"
+            f"{source}: unknown key {prefix + unknown[0]!r}; allowed keys"
             f"{' in ' + prefix.rstrip('.') if prefix else ''}: {', '.join(sorted(known))}"
         )
 
@@ -340,29 +340,29 @@ def _value(table: dict, name: str, key: Key, prefix: str, source: str) -> Any:
                         f"{key.allowed()}")
     if key.choices and value not in key.choices:
         raise SpecError(f"{where} is not allowed; {prefix}{name} must be {key.allowed()}")
-    number = _as_number(value, where)
+    number = _as_number(value, key, where)
     if number is not None and not _in_range(number, key):
         raise SpecError(f"{where} is out of range; {prefix}{name} ({key.help}) must be "
                         f"{key.allowed()}")
     return value
 
 
-def _as_number(value: Any, where: str) -> float | None:
-    if isinstance(value, bool) or value is None:
+def _as_number(value: Any, key: Key, where: str) -> float | None:
+    if isinstance(value, bool):
         return None
     if isinstance(value, int | float):
         return float(value)
-    if isinstance(value, str) and value and value[0].isdigit():
-        # A duration: only its validity is checked here; its length in steps
-        # depends on the Panel (check_against).
+    if isinstance(value, str) and key.low is not None:
+        # A string where a number is also allowed is a duration. Only its
+        # validity is checked here: its length in steps depends on the Panel.
         try:
             duration = pd.Timedelta(value)
         except ValueError as exc:
             raise SpecError(f"{where} is not a duration; write e.g. '1D', '7D', "
                             "'365.25D' or '12h'") from exc
-        if duration <= pd.Timedelta(0):
-            raise SpecError(f"{where} must be a positive duration")
-        return None
+        if duration <= pd.Timedelta(0) or not any(c.isalpha() for c in value):
+            raise SpecError(f"{where} is not a positive duration with a unit; write e.g. "
+                            "'1D', '7D', '365.25D' or '12h'")
     return None
 
 
