@@ -6,6 +6,7 @@ Exit codes: 0 ok, 1 internal error, 2 usage error, 3 input error.
 from __future__ import annotations
 
 import functools
+import logging
 import sys
 from pathlib import Path
 
@@ -75,6 +76,12 @@ def cli():
     Filled values are estimates, not measurements: whether they may count
     toward data capture is for your regulator's rules to decide.
     """
+    # gapband reports its choices (model preset, method, stages) through logging.
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(logging.Formatter("%(message)s"))
+    log = logging.getLogger("gapband")
+    log.handlers[:] = [handler]
+    log.setLevel(logging.INFO)
 
 
 @cli.command()
@@ -97,6 +104,77 @@ def inspect(input_path, json_path, capture_threshold, **read_kw):
 
         write_json(figures, json_path)
         console.print(f"figures written to {json_path}", highlight=False)
+
+
+def parse_levels(ctx, param, text: str) -> tuple[float, ...]:
+    """Parse ``--levels 50,80,90,95`` into numbers."""
+    try:
+        return tuple(float(part) for part in text.split(",") if part.strip())
+    except ValueError:
+        raise click.BadParameter(f"{text!r} is not a comma-separated list of percentages") from None
+
+
+@cli.command()
+@read_options
+@click.option("--out", "out_dir", type=click.Path(path_type=Path), required=True,
+              help="Folder for filled.nc, filled.csv and summary.json.")
+@click.option("--model", type=click.Path(path_type=Path),
+              help="Model spec (TOML); default: the preset for the data's time step.")
+@click.option("--transform", type=click.Choice(["none", "log", "log1p"]),
+              help="Override the spec's transform; 'log' keeps fills of positive, skewed "
+              "quantities positive.")
+@click.option("--method", type=click.Choice(["advi", "nuts"]), default="advi", show_default=True,
+              help="advi: fast, approximate (check with holdout); nuts: exact, slow.")
+@click.option("--draws", type=click.IntRange(10), default=1000, show_default=True,
+              help="Posterior draws (per chain for nuts).")
+@click.option("--tune", type=click.IntRange(0), default=1000, show_default=True,
+              help="NUTS warm-up steps per chain.")
+@click.option("--chains", type=click.IntRange(1), default=2, show_default=True,
+              help="NUTS chains.")
+@click.option("--levels", callback=parse_levels, default="50,80,90,95", show_default=True,
+              help="Central credible-interval levels in percent.")
+@click.option("--seed", type=int, default=0, show_default=True, help="Random seed.")
+@click.option("--flag-level", type=float, default=90, show_default=True,
+              help="Interval level the width rules look at.")
+@click.option("--max-width", type=click.FloatRange(0, min_open=True),
+              help="Flag a fill uncertain when its interval is wider than this (data units).")
+@click.option("--max-rel-width", type=click.FloatRange(0, min_open=True),
+              help="... or wider than this times the series' 5-95 % observed range.")
+@click.option("--max-gap", metavar="DURATION",
+              help="Flag fills in gaps longer than DURATION (e.g. '72h') uncertain.")
+@click.option("--min-observed", type=click.IntRange(1), default=10, show_default=True,
+              help="Series with fewer observations are not filled.")
+@click.option("--table", type=click.Choice(["csv", "parquet"]), default="csv",
+              show_default=True, help="Format of the long table.")
+@click.option("--overwrite", is_flag=True, help="Replace existing outputs in --out.")
+@click.option("--quiet", is_flag=True, help="No progress bars.")
+@handle_errors
+def fill(input_path, out_dir, model, transform, method, draws, tune, chains, levels, seed,
+         flag_level, max_width, max_rel_width, max_gap, min_observed, table, overwrite, quiet,
+         **read_kw):
+    """Fill every missing cell of INPUT with a credible interval and a flag."""
+    from gapband import filling
+    from gapband.outputs import prepare_dir
+
+    prepare_dir(out_dir, ["filled.nc", f"filled.{table}", "summary.json"], overwrite)
+    panel = gapband.read(input_path, **read_kw)
+    options = filling.FillOptions(
+        method=method, draws=draws, tune=tune, chains=chains, levels=levels, seed=seed,
+        rules=filling.FlagRules(level=flag_level, max_width=max_width,
+                                max_rel_width=max_rel_width, max_gap=max_gap,
+                                min_observed=min_observed),
+        progress=not quiet,
+    )
+    result, summary = filling.fill(panel, model=model, transform=transform, options=options)
+    written = filling.write_fill(result, summary, out_dir, table=table, overwrite=True)
+    for warning in summary["diagnostics"].get("warnings", []):
+        errors.print(f"[bold yellow]warning:[/] {warning}", highlight=False)
+    counts = summary["flags"]["overall"]
+    console.print(
+        "cells: " + ", ".join(f"{n} {meaning}" for meaning, n in counts.items()), highlight=False
+    )
+    for path in written:
+        console.print(f"wrote {path}", highlight=False)
 
 
 @cli.command()

@@ -8,6 +8,7 @@ name the file, the line (or row) and the column.
 
 from __future__ import annotations
 
+import hashlib
 import re
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -142,7 +143,17 @@ def read(
         units=options.units or file_units,
         attrs=attrs,
     )
+    panel.attrs["input_sha256"] = _sha256(path)
     return panel
+
+
+def _sha256(path: Path) -> str:
+    """SHA-256 of the input file, recorded for provenance."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as f:
+        for block in iter(lambda: f.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
 
 
 def _read_csv(path: Path) -> pd.DataFrame:
