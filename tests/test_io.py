@@ -186,7 +186,9 @@ def test_unparseable_timestamp_names_the_line(write):
         "time,series,value\n2024-01-01T00:00,A,1\n2024-01-01T01:00,A,2\n"
         "yesterday noon,A,3\n2024-01-01T03:00,A,4\n",
     )
-    with pytest.raises(TimestampError, match=r"bad_time\.csv, line 4: cannot read 'yesterday noon'"):
+    with pytest.raises(
+        TimestampError, match=r"bad_time\.csv, line 4: cannot read 'yesterday noon'"
+    ):
         gapband.read(path)
 
 
@@ -253,10 +255,12 @@ def test_off_grid_timestamp_is_an_error(write):
     path = write(
         "offgrid.csv",
         "time,series,value\n2024-01-01T00:00,A,1\n2024-01-01T01:00,A,2\n"
-        "2024-01-01T02:03,A,3\n2024-01-01T03:00,A,4\n",
+        "2024-01-01T02:03,A,3\n2024-01-01T03:00,A,4\n2024-01-01T04:00,A,5\n"
+        "2024-01-01T05:00,A,6\n",
     )
     with pytest.raises(
-        TimestampError, match=r"offgrid\.csv, line 4: timestamp 2024-01-01 02:03:00 is off the h grid"
+        TimestampError,
+        match=r"offgrid\.csv, line 4: timestamp 2024-01-01 02:03:00 is off the h grid",
     ):
         gapband.read(path)
 
@@ -265,10 +269,11 @@ def test_snap_moves_off_grid_timestamps_to_the_nearest_point(write):
     path = write(
         "offgrid.csv",
         "time,series,value\n2024-01-01T00:00,A,1\n2024-01-01T01:00,A,2\n"
-        "2024-01-01T02:03,A,3\n2024-01-01T02:58,A,4\n2024-01-01T04:00,A,5\n",
+        "2024-01-01T02:03,A,3\n2024-01-01T02:58,A,4\n2024-01-01T04:00,A,5\n"
+        "2024-01-01T05:00,A,6\n2024-01-01T06:00,A,7\n",
     )
     panel = gapband.read(path, snap="5min")
-    expected = pd.date_range("2024-01-01T00:00", periods=5, freq="h").to_numpy()
+    expected = pd.date_range("2024-01-01T00:00", periods=7, freq="h").to_numpy()
     np.testing.assert_array_equal(panel["time"].values, expected)
     # 02:03 lands on 02:00 and 02:58 on 03:00.
     assert panel["value"].sel(series="A", time="2024-01-01T02:00").item() == 3.0
@@ -280,7 +285,8 @@ def test_snap_tolerance_too_small_is_still_an_error(write):
     path = write(
         "offgrid.csv",
         "time,series,value\n2024-01-01T00:00,A,1\n2024-01-01T01:00,A,2\n"
-        "2024-01-01T02:03,A,3\n2024-01-01T03:00,A,4\n",
+        "2024-01-01T02:03,A,3\n2024-01-01T03:00,A,4\n2024-01-01T04:00,A,5\n"
+        "2024-01-01T05:00,A,6\n",
     )
     with pytest.raises(TimestampError, match=r"line 4: .*off the h grid.*widen the snapping"):
         gapband.read(path, snap="2min")
@@ -500,7 +506,9 @@ def test_long_layout_without_a_value_column_asks_which(write):
 
 def test_missing_time_column_is_named(write):
     path = write("notime.csv", "when,A\n2024-01-01T00:00,1\n")
-    with pytest.raises(InputError, match=r"notime\.csv: no time column found among \['when', 'A'\]"):
+    with pytest.raises(
+        InputError, match=r"notime\.csv: no time column found among \['when', 'A'\]"
+    ):
         gapband.read(path)
     with pytest.raises(InputError, match=r"the time column 'moment' is not in the file"):
         gapband.read(path, time_col="moment")

@@ -327,7 +327,7 @@ def _no_missing_times(
 
 
 def utc_offsets(column: pd.Series) -> list[str]:
-    """The distinct UTC offsets of a column of timestamps (text or zone-aware)."""
+    """Return the distinct UTC offsets of a column of timestamps (text or zone-aware)."""
     if _is_datetime(column):
         if getattr(column.dt, "tz", None) is None:
             return []

@@ -294,7 +294,7 @@ def _short_term(spec: ModelSpec, ar_factors: int):
     pm.Deterministic("ar_coef", pt.stack(_levinson(pacf, order)[0][-1], axis=1),
                      dims=("short_factor", "lag"))
     ar = pm.CustomDist(
-        "ar", pacf, logp=lambda value, p: _stationary_ar_logp(value, p, order),
+        "ar", pacf, logp=lambda value, p: _stationary_ar_logp(value, p, (ar_factors, order)),
         dims=("short_factor", "time"),
     )
     loading = pm.Normal("short_loading", 0.0, spec.priors.loading,
@@ -308,7 +308,8 @@ def _own(spec: ModelSpec, n_series: int):
     # The unit path's density does not involve sd, which keeps the sd free of
     # the funnel a centred scale would create.
     unit = pm.CustomDist(
-        "own_unit", rho[:, None], logp=lambda value, p: _stationary_ar_logp(value, p, 1),
+        "own_unit", rho[:, None],
+        logp=lambda value, p: _stationary_ar_logp(value, p, (n_series, 1)),
         dims=("series", "time"),
     )
     return sd[:, None] * unit
@@ -337,13 +338,18 @@ def _normal_logp(x, mu, var):
     return -0.5 * (np.log(2.0 * np.pi) + pt.log(var) + (x - mu) ** 2 / var)
 
 
-def _stationary_ar_logp(x, pacf, order: int):
-    """Exact log density of rows of x, each a stationary unit-variance AR(order).
+def _stationary_ar_logp(x, pacf, shape: tuple[int, int]):
+    """Exact log density of the rows of x, each a stationary unit-variance AR(order).
+
+    ``shape`` is (rows, order): static shapes let PyTensor broadcast a single row.
 
     The first values are conditioned on their predecessors with the
     lower-order coefficients (the exact prediction-error decomposition), the
     rest with the full order; all rows and times at once, without a scan.
     """
+    rows, order = shape
+    pacf = pt.specify_shape(pacf, shape)
+    x = pt.specify_shape(x, (rows, None))
     phis, variances = _levinson(pacf, order)
     n_time = x.shape[1]
     logp = pt.sum(_normal_logp(x[:, 0], 0.0, 1.0))

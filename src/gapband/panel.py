@@ -151,7 +151,8 @@ def make_panel(
 
 def infer_step(times: pd.DatetimeIndex, source: str = "input") -> str:
     """Infer the grid step: the most common difference between sorted unique times."""
-    uniq = times.unique().sort_values()
+    # asi8 counts in the index's own unit (pandas 3 often parses to us or s).
+    uniq = pd.DatetimeIndex(times).unique().sort_values().as_unit("ns")
     if len(uniq) < 2:
         raise InputError(
             f"{source}: only one distinct time step ({uniq[0] if len(uniq) else 'none'}); "
@@ -163,6 +164,10 @@ def infer_step(times: pd.DatetimeIndex, source: str = "input") -> str:
         on_month_start = (uniq.day == 1) & (uniq.normalize() == uniq)
         if on_month_start.all():
             return "MS"
+    if common % _DAY == pd.Timedelta(0):
+        # pandas 3 spells a Timedelta of one day "24h"; users (and DESIGN) say "D".
+        days = common // _DAY
+        return "D" if days == 1 else f"{days}D"
     return pd.tseries.frequencies.to_offset(common).freqstr
 
 
@@ -209,6 +214,8 @@ def from_long(
     if table.empty:
         raise InputError(f"{source}: no data rows; the file holds only a header or nothing")
     n_rows = len(table)
+    # One time unit throughout: the grid arithmetic below counts nanoseconds.
+    table = table.assign(time=pd.DatetimeIndex(table["time"]).as_unit("ns"))
     step = check_step(step) if step else infer_step(pd.DatetimeIndex(table["time"]), source)
     table, n_snapped = _snap_to_grid(table, step, snap, source)
     table, n_merged = _resolve_duplicates(table, duplicates, source)
