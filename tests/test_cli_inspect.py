@@ -77,7 +77,6 @@ def test_inspect_threshold_changes_meets(runner, good):
 
 
 def test_inspect_json_writes_the_same_figures(runner, good, tmp_path):
-    # Needs gapband.outputs.write_json (written alongside this battery).
     out = tmp_path / "figures.json"
     result = runner.invoke(cli, ["inspect", str(good), "--json", str(out)])
     assert result.exit_code == 0, result.output
@@ -88,6 +87,18 @@ def test_inspect_json_writes_the_same_figures(runner, good, tmp_path):
     assert figures["series"][0]["series"] == "north"
     assert figures["series"][0]["capture_pct"] == 75.0
     assert figures["alignment"].startswith("step h; 7 rows")
+
+
+def test_inspect_json_refuses_to_overwrite(runner, good, tmp_path):
+    out = tmp_path / "figures.json"
+    out.write_text("keep me", encoding="utf-8")
+    result = runner.invoke(cli, ["inspect", str(good), "--json", str(out)])
+    assert result.exit_code == 2
+    assert "--overwrite" in result.output
+    assert out.read_text(encoding="utf-8") == "keep me"
+    result = runner.invoke(cli, ["inspect", str(good), "--json", str(out), "--overwrite"])
+    assert result.exit_code == 0, result.output
+    assert json.loads(out.read_text(encoding="utf-8"))["step"] == "h"
 
 
 def test_inspect_bad_input_exits_3_and_names_the_line(runner, write):

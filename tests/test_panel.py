@@ -172,7 +172,7 @@ def test_worked_capture_figure_8000_of_8760_hours():
 
 @pytest.mark.parametrize("threshold", [-1, 100.5])
 def test_inspect_rejects_a_threshold_outside_0_100(threshold):
-    with pytest.raises(InputError, match=r"capture threshold .* is not a percentage"):
+    with pytest.raises(UsageError, match=r"capture threshold .* is not a percentage"):
         gapband.inspect(_edge_panel(), capture_threshold=threshold)
 
 

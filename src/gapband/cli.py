@@ -20,7 +20,7 @@ from gapband.errors import GapbandError, InputError, SpecError, UsageError
 EXIT_INTERNAL, EXIT_USAGE, EXIT_INPUT = 1, 2, 3
 
 console = Console(width=None if sys.stdout.isatty() else 140)
-errors = Console(stderr=True)
+errors = Console(stderr=True, soft_wrap=True)
 
 
 def read_options(command):
@@ -88,12 +88,15 @@ def cli():
 @read_options
 @click.option("--json", "json_path", type=click.Path(path_type=Path),
               help="Also write the figures as JSON to this file.")
+@click.option("--overwrite", is_flag=True, help="Replace an existing --json file.")
 @click.option("--capture-threshold", type=click.FloatRange(0, 100), default=90.0,
               show_default=True, metavar="PCT",
               help="Minimum data capture (%) a series must reach.")
 @handle_errors
-def inspect(input_path, json_path, capture_threshold, **read_kw):
+def inspect(input_path, json_path, capture_threshold, overwrite, **read_kw):
     """Report data capture and gaps per series of INPUT."""
+    if json_path is not None and json_path.exists() and not overwrite:
+        raise UsageError(f"{json_path} exists; pass --overwrite to replace it")
     panel = gapband.read(input_path, **read_kw)
     figures = gapband.inspect(panel, capture_threshold=capture_threshold)
     figures["alignment"] = panel.attrs.get("alignment", "")

@@ -168,7 +168,9 @@ def _read_csv(path: Path) -> pd.DataFrame:
         except UnicodeDecodeError:
             continue
         except pd.errors.EmptyDataError:
-            raise InputError(f"{path.name}: the file is empty; it needs a header and rows") from None
+            raise InputError(
+                f"{path.name}: the file is empty; it needs a header and rows"
+            ) from None
         except pd.errors.ParserError as err:
             raise InputError(f"{path.name}: not a readable CSV table ({err})") from None
         frame.columns = [str(c).strip() for c in frame.columns]

@@ -387,7 +387,7 @@ def inspect(panel: xr.Dataset, capture_threshold: float = 90.0) -> dict:
         last_observation.
     """
     if not 0 <= capture_threshold <= 100:
-        raise InputError(f"capture threshold {capture_threshold!r} is not a percentage (0-100)")
+        raise UsageError(f"capture threshold {capture_threshold!r} is not a percentage (0-100)")
     missing = panel["value"].isnull().values
     times = pd.DatetimeIndex(panel["time"].values)
     step = step_of(panel)
