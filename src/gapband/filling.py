@@ -23,6 +23,7 @@ import xarray as xr
 
 from gapband import flags, outputs
 from gapband.errors import GapbandError, InputError, UsageError
+from gapband.panel import step_of
 from gapband.spec import ModelSpec, check_against, load, preset_for
 
 log = logging.getLogger(__name__)
@@ -70,12 +71,28 @@ def resolve_spec(
     elif model is None:
         spec, name = preset_for(panel)
         label = f"preset {name} (chosen for step {panel.attrs['step']})"
+        spec, dropped = fit_seasons_to_span(spec, panel)
+        if dropped:
+            label += f", without cycles longer than the data ({', '.join(dropped)})"
     else:
         spec, label = load(model), str(model)
     if transform is not None:
         spec = dataclasses.replace(spec, transform=transform)
     check_against(spec, panel)
     return spec, label
+
+
+def fit_seasons_to_span(spec: ModelSpec, panel: xr.Dataset) -> tuple[ModelSpec, list[str]]:
+    """Drop a preset's seasonal cycles that the record is too short to show.
+
+    A preset is chosen for the user, so a weekly cycle on four days of data
+    is left out (and said) rather than refused; a spec the user wrote is
+    checked strictly by :func:`gapband.spec.check_against`.
+    """
+    step, n_time = step_of(panel), panel.sizes["time"]
+    kept = tuple(s for s in spec.seasonal if s.steps(step) <= n_time)
+    dropped = [str(s.period) for s in spec.seasonal if s not in kept]
+    return dataclasses.replace(spec, seasonal=kept), dropped
 
 
 def check_levels(levels: tuple[float, ...]) -> tuple[float, ...]:

@@ -103,12 +103,12 @@ def build(panel: xr.Dataset, spec: ModelSpec) -> BuiltModel:
     if n_time <= spec.ar_order + 1:
         raise FitError(f"the panel has {n_time} time steps; the model needs more than "
                        f"ar_order + 1 = {spec.ar_order + 1}")
+    if not panel["value"].notnull().any():
+        raise FitError("the panel has no observed value; there is nothing to fit")
     transformed = forward(panel["value"].values, spec.transform)
     mean, scale = _standardisation(transformed, spec.standardise)
     z = (transformed - mean[:, None]) / scale[:, None]
     observed = np.flatnonzero(~np.isnan(z.ravel()))
-    if observed.size == 0:
-        raise FitError("the panel has no observed value; there is nothing to fit")
     rank = choose_rank(z, spec)
     ar_factors = min(spec.ar_factors, n_series)
     fourier = _fourier(panel, spec)
@@ -174,14 +174,20 @@ def choose_rank(z: np.ndarray, spec: ModelSpec) -> int:
 
     Counts the singular values of the centred, scaled, mean-imputed
     ``(series, time)`` array whose squared share of the total is at least
-    ``spec.rank_share``; at least 1, at most ``spec.rank`` and the number of series.
+    ``spec.rank_share`` and above the average share 1/N (Kaiser's rule: a
+    factor must explain more than one series' worth of variance); at least
+    1, at most ``spec.rank`` and the number of series.
     """
-    centred = z - np.nanmean(z, axis=1, keepdims=True)
-    sd = np.nanstd(centred, axis=1, keepdims=True)
-    filled = np.nan_to_num(centred / np.where(sd > 0, sd, 1.0), nan=0.0)
+    observed = ~np.isnan(z)
+    counts = np.maximum(observed.sum(axis=1, keepdims=True), 1)
+    mean = np.where(observed, z, 0.0).sum(axis=1, keepdims=True) / counts
+    centred = np.where(observed, z - mean, 0.0)
+    sd = np.sqrt((centred**2).sum(axis=1, keepdims=True) / counts)
+    filled = centred / np.where(sd > 0, sd, 1.0)
     singular = np.linalg.svd(filled, compute_uv=False)
     total = float((singular**2).sum())
-    supported = int((singular**2 / total >= spec.rank_share).sum()) if total > 0 else 1
+    share = singular**2 / total if total > 0 else np.ones(1)
+    supported = int(((share >= spec.rank_share) & (share > 1.0 / z.shape[0])).sum())
     return int(np.clip(supported, 1, min(spec.rank, z.shape[0])))
 
 

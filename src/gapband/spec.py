@@ -62,7 +62,7 @@ TOP_KEYS: dict[str, Key] = {
     "rank": Key((int,), 3, "maximum number of shared factors", 1, 20),
     "rank_share": Key(
         (float,), 0.05,
-        "a factor counts when its singular value explains at least this share of the variance",
+        "a factor counts when it explains at least this share of the variance (and over 1/N)",
         0.0, 1.0, low_open=True,
     ),
     "ar_order": Key((int,), 1, "order p of the short-term AR(p) factors", 1, 3),

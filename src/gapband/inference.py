@@ -1,0 +1,299 @@
+"""One entry point from a Panel and a spec to posterior draws with diagnostics.
+
+Methods are looked up in :data:`METHODS`, so another one (the exact
+block-Gibbs sampler) slots in beside ``nuts`` and ``advi``.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Literal
+
+import arviz as az
+import numpy as np
+import pymc as pm
+import xarray as xr
+
+from gapband.errors import UsageError
+from gapband.model import RAW_VARIABLES, BuiltModel, build, draw_arrays, mean_at
+from gapband.spec import ModelSpec
+
+Method = Literal["nuts", "advi"]
+
+#: Thresholds below which a NUTS fit is reported as not converged.
+R_HAT_MAX = 1.01
+ESS_BULK_MIN = 400
+
+#: NUTS step-size adaptation target; above the usual 0.8 because the noise,
+#: short-term and own-persistence terms trade off along curved ridges.
+TARGET_ACCEPT = 0.95
+
+#: ADVI stops when the mean loss (negative ELBO) of the latest window of
+#: iterations has improved on the window ELBO_LAG windows earlier by less than
+#: this share, or by less than two standard errors of the difference (no
+#: improvement the noise can show). Comparing windows 2,000 iterations apart
+#: rather than adjacent ones keeps a slow but steady climb from passing as
+#: converged.
+ELBO_WINDOW = 500
+ELBO_LAG = 4
+ELBO_TOLERANCE = 1e-3
+
+#: Step size of ADVI's adaptive optimiser; PyMC's default (1e-3) needs
+#: several times more iterations on our models to reach the same ELBO.
+ADVI_LEARNING_RATE = 0.01
+
+#: Cells whose predicted mean enters R-hat and ESS: factor signs and order are
+#: not identified, so diagnostics look at quantities that are.
+DIAGNOSTIC_CELLS = 100
+
+
+@dataclass(frozen=True)
+class Fit:
+    """A fitted model: posterior draws, diagnostics and what predict needs.
+
+    Attributes
+    ----------
+    method : str
+        "nuts" or "advi".
+    approximate : bool
+        True when the draws come from an approximation (ADVI), not the exact posterior.
+    posterior : Dataset
+        Posterior draws, dims ``chain``, ``draw`` and the model's dims.
+    diagnostics : dict
+        JSON-ready: r_hat_max, ess_bulk_min, divergences, n_draws, converged,
+        warnings (list of str), elbo (ADVI only).
+    timings : dict of str to float
+        Seconds: build, compile (NUTS with nutpie), sample, diagnostics.
+    built : BuiltModel
+        The model and the standardisation of each series.
+    spec : ModelSpec
+    seed : int
+    """
+
+    method: str
+    approximate: bool
+    posterior: xr.Dataset
+    diagnostics: dict
+    timings: dict[str, float]
+    built: BuiltModel
+    spec: ModelSpec
+    seed: int
+
+
+def fit(
+    panel: xr.Dataset,
+    spec: ModelSpec,
+    *,
+    method: Method = "nuts",
+    draws: int = 1000,
+    tune: int = 1000,
+    chains: int = 2,
+    seed: int = 0,
+    progress: bool = False,
+    max_iterations: int = 50_000,
+) -> Fit:
+    """Fit the model of a Panel under a spec.
+
+    Parameters
+    ----------
+    panel : Dataset
+        A Panel.
+    spec : ModelSpec
+    method : {"nuts", "advi"}
+        NUTS (nutpie when installed, else PyMC's sampler) or mean-field ADVI.
+    draws, tune, chains : int
+        Posterior draws per chain, warm-up iterations per chain (NUTS), chains
+        (NUTS; ADVI gives one chain of ``draws`` draws).
+    seed : int
+        Seed of every random choice; the same seed gives the same draws.
+    progress : bool
+        Show the sampler's progress bar.
+    max_iterations : int
+        Cap on ADVI iterations when the ELBO has not converged earlier.
+
+    Returns
+    -------
+    Fit
+
+    Raises
+    ------
+    UsageError
+        Unknown method or a non-positive count.
+    SpecError, FitError
+        From building the model.
+    """
+    if method not in METHODS:
+        raise UsageError(f"unknown inference method {method!r}; use one of "
+                         + ", ".join(repr(m) for m in METHODS))
+    for name, value in (("draws", draws), ("tune", tune), ("chains", chains),
+                        ("max_iterations", max_iterations)):
+        if not isinstance(value, int) or value < (0 if name == "tune" else 1):
+            raise UsageError(f"{name} = {value!r} must be a positive integer")
+    start = time.perf_counter()
+    built = build(panel, spec)
+    timings = {"build": time.perf_counter() - start}
+    run = METHODS[method]
+    posterior, diagnostics, run_timings = run(
+        built, draws=draws, tune=tune, chains=chains, seed=seed, progress=progress,
+        max_iterations=max_iterations,
+    )
+    timings |= run_timings
+    start = time.perf_counter()
+    keep = [v.name for v in built.model.free_RVs + built.model.deterministics
+            if v.name not in RAW_VARIABLES]
+    posterior = posterior[keep]
+    posterior = posterior.drop_vars([c for c in posterior.coords if c not in posterior.dims])
+    diagnostics = _identified_diagnostics(posterior, built, panel, seed) | diagnostics
+    diagnostics["warnings"] = _warnings(method, diagnostics)
+    diagnostics["converged"] = not diagnostics["warnings"]
+    timings["diagnostics"] = time.perf_counter() - start
+    return Fit(method=method, approximate=method == "advi", posterior=posterior,
+               diagnostics=diagnostics, timings=timings, built=built, spec=spec, seed=seed)
+
+
+def _nuts(built: BuiltModel, *, draws: int, tune: int, chains: int, seed: int,
+          progress: bool, max_iterations: int) -> tuple[xr.Dataset, dict, dict]:
+    cores = min(chains, os.cpu_count() or 1)
+    timings = {}
+    nutpie = _nutpie()
+    if nutpie is not None:
+        start = time.perf_counter()
+        compiled = nutpie.compile_pymc_model(built.model)
+        timings["compile"] = time.perf_counter() - start
+        start = time.perf_counter()
+        idata = nutpie.sample(compiled, draws=draws, tune=tune, chains=chains, cores=cores,
+                              seed=seed, progress_bar=progress, save_warmup=False,
+                              target_accept=TARGET_ACCEPT)
+    else:
+        start = time.perf_counter()
+        with built.model:
+            idata = pm.sample(draws=draws, tune=tune, chains=chains, cores=cores,
+                              random_seed=seed, progressbar=progress,
+                              target_accept=TARGET_ACCEPT, compute_convergence_checks=False)
+    timings["sample"] = time.perf_counter() - start
+    divergences = int(idata.sample_stats["diverging"].sum())
+    return idata.posterior, {"divergences": divergences,
+                             "sampler": "nutpie" if nutpie else "pymc"}, timings
+
+
+def _advi(built: BuiltModel, *, draws: int, tune: int, chains: int, seed: int,
+          progress: bool, max_iterations: int) -> tuple[xr.Dataset, dict, dict]:
+    stop = _ElboConvergence(ELBO_WINDOW, ELBO_LAG, ELBO_TOLERANCE)
+    start = time.perf_counter()
+    with built.model:
+        approx = pm.fit(n=max_iterations, method="advi", random_seed=seed,
+                        progressbar=progress, callbacks=[stop],
+                        obj_optimizer=pm.adagrad_window(learning_rate=ADVI_LEARNING_RATE))
+    timings = {"optimise": time.perf_counter() - start}
+    start = time.perf_counter()
+    idata = approx.sample(draws, random_seed=seed, return_inferencedata=True)
+    timings["sample"] = time.perf_counter() - start
+    losses = np.asarray(approx.hist)
+    elbo = {
+        "iterations": int(losses.size),
+        "max_iterations": max_iterations,
+        "final": float(-losses[-min(ELBO_WINDOW, losses.size):].mean()),
+        "relative_change": stop.relative_change,
+        "converged": stop.converged,
+    }
+    return idata.posterior, {"elbo": elbo}, timings
+
+
+#: Inference methods by name; each returns (posterior, diagnostics, timings).
+METHODS: dict[str, Callable[..., tuple[xr.Dataset, dict, dict]]] = {
+    "nuts": _nuts,
+    "advi": _advi,
+}
+
+
+class _ElboConvergence:
+    """PyMC fit callback: stop when the windowed mean loss has stopped improving."""
+
+    def __init__(self, window: int, lag: int, tolerance: float):
+        self.window = window
+        self.lag = lag
+        self.tolerance = tolerance
+        self.converged = False
+        self.relative_change: float | None = None
+
+    def __call__(self, approx, losses, i) -> None:
+        done = i + 1
+        if done % self.window or done < (self.lag + 1) * self.window:
+            return
+        latest = np.asarray(losses[-self.window:])
+        start = -(self.lag + 1) * self.window
+        before = np.asarray(losses[start:start + self.window])
+        improvement = before.mean() - latest.mean()
+        noise = np.sqrt((latest.var() + before.var()) / self.window)
+        self.relative_change = float(abs(improvement) / max(abs(latest.mean()), 1e-12))
+        if self.relative_change < self.tolerance or improvement < 2.0 * noise:
+            self.converged = True
+            raise StopIteration(f"ELBO converged after {done} iterations")
+
+
+def _identified_diagnostics(posterior: xr.Dataset, built: BuiltModel, panel: xr.Dataset,
+                            seed: int) -> dict:
+    """R-hat and bulk ESS of quantities invariant to factor sign and order.
+
+    These are the noise sds (unless fixed) and the predicted mean at up to
+    DIAGNOSTIC_CELLS cells (missing cells first, as those are what we fill).
+    """
+    n_chain, n_draw = posterior.sizes["chain"], posterior.sizes["draw"]
+    result = {"n_draws": int(n_chain * n_draw), "r_hat_max": None, "ess_bulk_min": None}
+    if n_chain < 2:  # R-hat needs several chains; an approximation has one
+        return result
+    rng = np.random.default_rng(seed)
+    missing = np.flatnonzero(panel["value"].isnull().values.ravel())
+    pool = missing if missing.size else built.observed
+    cells = np.sort(rng.choice(pool, size=min(DIAGNOSTIC_CELLS, pool.size), replace=False))
+    means = mean_at(draw_arrays(posterior, built), cells, panel.sizes["time"])
+    checked = xr.Dataset(
+        {"cell_mean": (("chain", "draw", "cell"), means.reshape(n_chain, n_draw, -1))}
+    )
+    if built.spec.fixed.noise is None:  # a fixed value has no R-hat
+        checked["noise"] = posterior["noise"]
+    r_hat = az.rhat(checked)
+    ess = az.ess(checked, method="bulk")
+    result["r_hat_max"] = float(max(np.nanmax(r_hat[v].values) for v in r_hat.data_vars))
+    result["ess_bulk_min"] = float(min(np.nanmin(ess[v].values) for v in ess.data_vars))
+    return result
+
+
+def _warnings(method: str, diagnostics: dict) -> list[str]:
+    messages = []
+    if method == "advi":
+        elbo = diagnostics["elbo"]
+        if not elbo["converged"]:
+            change = elbo["relative_change"]
+            messages.append(
+                f"ADVI stopped at the cap of {elbo['max_iterations']} iterations before the "
+                "ELBO converged"
+                + (f" (last relative change {change:.2g})" if change is not None else "")
+                + "; raise max_iterations or use method 'nuts'"
+            )
+        return messages
+    r_hat, ess = diagnostics["r_hat_max"], diagnostics["ess_bulk_min"]
+    if r_hat is None:
+        messages.append("R-hat and ESS need at least 2 chains; convergence is unchecked")
+    if r_hat is not None and not r_hat <= R_HAT_MAX:
+        messages.append(f"R-hat reaches {r_hat:.3f} (> {R_HAT_MAX}): the chains disagree; "
+                        "run longer (more tune and draws)")
+    if ess is not None and not ess >= ESS_BULK_MIN:
+        messages.append(f"bulk ESS is as low as {ess:.0f} (< {ESS_BULK_MIN}); "
+                        "draw more samples")
+    if diagnostics["divergences"]:
+        messages.append(f"{diagnostics['divergences']} divergent transitions: the posterior "
+                        "may be explored incompletely; intervals may be too narrow")
+    return messages
+
+
+def _nutpie():
+    """The nutpie module when installed (the faster NUTS), else None."""
+    try:
+        import nutpie
+    except ImportError:
+        return None
+    return nutpie
