@@ -91,7 +91,7 @@ def test_local_level_matches_the_kalman_smoother():
     # Source: for a random-walk level plus Gaussian noise with known variances
     # the exact posterior of the missing cells is the Kalman smoother's
     # (local level model; Durbin & Koopman, Time Series Analysis by State
-    # Space Methods, 2nd ed., 2012, ch. 2), computed by statsmodels
+    # Space Methods, 2nd ed., 2012, ch. 2 - chapter from memory), computed by statsmodels
     # UnobservedComponents("llevel") with the same fixed variances and the
     # same known initial state N(0, level_sd^2).
     y, q, sigma, level_sd = _local_level_case()
@@ -201,7 +201,7 @@ def test_nuts_intervals_cover_at_the_nominal_rate_on_prior_draws(record_property
     # Source: for data drawn from the model's own prior, posterior predictive
     # intervals cover at their nominal rate on average (Cook, Gelman & Rubin,
     # "Validation of software for Bayesian models using posterior quantiles",
-    # JCGS 2006). Tolerance: 3 binomial standard deviations for the pooled
+    # JCGS 2006; citation from memory). Tolerance: 3 binomial sds for the pooled
     # missing cells of three data sets.
     calibration = spec.parse(CALIBRATION)
     hits = _coverage("nuts", calibration)

@@ -34,7 +34,8 @@ def _hourly_values(n_series=3, n_time=72, seed=0):
 def test_stationary_ar_logp_is_the_exact_gaussian_density(coefficients):
     # Source: the exact Gaussian likelihood of a stationary AR(p) is the
     # multivariate normal with Toeplitz autocovariance (Brockwell & Davis,
-    # Time Series: Theory and Methods, 2nd ed., 1991, section 8.7); the
+    # Time Series: Theory and Methods, 2nd ed., 1991, section 8.7, section
+    # number from memory); the
     # autocovariance and partial autocorrelations come from statsmodels.
     process = ArmaProcess(np.r_[1.0, -np.asarray(coefficients)], [1.0])
     order = len(coefficients)

@@ -1,0 +1,1 @@
+"""Model presets shipped with gapband (installed as gapband.presets)."""
