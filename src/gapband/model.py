@@ -196,7 +196,7 @@ def draw_arrays(posterior: xr.Dataset, built: BuiltModel) -> dict[str, np.ndarra
 
     Returns the arrays :func:`mean_at` needs: ``loading`` (S, N, r), ``factor``
     (S, r, T, trend plus season), ``short_loading`` (S, N, r_b), ``ar`` (S, r_b, T),
-    ``own`` (S, N) sd and ``own_unit`` (S, N, T) when present, ``noise`` (S, N).
+    ``own`` (S, N) sd, ``own_rho`` (S, N) and ``own_unit`` (S, N, T) when present, ``noise`` (S, N).
     """
 
     def take(name: str) -> np.ndarray:
@@ -210,7 +210,8 @@ def draw_arrays(posterior: xr.Dataset, built: BuiltModel) -> dict[str, np.ndarra
     if built.ar_factors:
         arrays |= {"short_loading": take("short_loading"), "ar": take("ar")}
     if built.spec.own_ar:
-        arrays |= {"own": take("own"), "own_unit": take("own_unit")}
+        arrays |= {"own": take("own"), "own_rho": take("own_rho"),
+                   "own_unit": take("own_unit")}
     return arrays
 
 
