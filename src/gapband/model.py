@@ -29,6 +29,7 @@ Only observed cells enter the likelihood (gathered by flat index).
 
 from __future__ import annotations
 
+import logging
 import warnings
 from dataclasses import dataclass
 from typing import Literal
@@ -41,6 +42,12 @@ import xarray as xr
 from gapband.errors import FitError
 from gapband.panel import step_of
 from gapband.spec import ModelSpec, check_against
+
+# A pip-installed PyTensor cannot link a system BLAS and says so at its first
+# compile; it falls back to NumPy's BLAS, which serves these models well.
+warnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS",
+                        category=UserWarning)
+logging.getLogger("pytensor.tensor.blas").setLevel(logging.ERROR)
 
 Transform = Literal["none", "log", "log1p"]
 

@@ -15,8 +15,8 @@ import numpy as np
 import xarray as xr
 
 from gapband.errors import UsageError
-from gapband.inference import Fit
 from gapband.gmrf import draw_ar1_given_noisy
+from gapband.inference import Fit
 from gapband.model import draw_arrays, forward, inverse, mean_at
 
 DEFAULT_LEVELS = (50, 80, 90, 95)
