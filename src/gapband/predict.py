@@ -10,6 +10,7 @@ stays bounded however many cells there are.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from dataclasses import dataclass
 
 import numpy as np
 import xarray as xr
@@ -66,16 +67,9 @@ def summarise(
     levels = _check_levels(levels)
     if not isinstance(chunk_cells, int) or chunk_cells < 1:
         raise UsageError(f"chunk_cells = {chunk_cells!r} must be a positive integer")
-    _check_same_panel(fit, panel)
     n_series, n_time = panel.sizes["series"], panel.sizes["time"]
     missing = np.flatnonzero(panel["value"].isnull().values.ravel())
-    arrays = draw_arrays(fit.posterior, fit.built)
-    mean = fit.built.mean.values
-    scale = fit.built.scale.values
-    rng = np.random.default_rng(seed)
-    if "own" in arrays and fit.spec.noise == "normal":
-        z = (forward(panel["value"].values, fit.built.transform) - mean[:, None]) / scale[:, None]
-        arrays["own_unit"] = condition_own(arrays, z, rng)
+    predictive = Predictive.of(fit, panel, seed=seed)
     probs = [p for level in levels for p in (0.5 - level / 200, 0.5 + level / 200)]
 
     names = ["fill_mean", "fill_median", "fill_sd"] + [
@@ -84,10 +78,7 @@ def summarise(
     out = {name: np.full(n_series * n_time, np.nan) for name in names}
     for begin in range(0, missing.size, chunk_cells):
         cells = missing[begin : begin + chunk_cells]
-        series = cells // n_time
-        z = mean_at(arrays, cells, n_time)
-        z += _noise(rng, z.shape, fit.spec.noise, fit.spec.noise_df) * arrays["noise"][:, series]
-        values = inverse(mean[series] + scale[series] * z, fit.built.transform)
+        values = predictive.draws(cells)
         out["fill_mean"][cells] = values.mean(axis=0)
         out["fill_sd"][cells] = values.std(axis=0, ddof=1) if values.shape[0] > 1 else np.nan
         quantiles = np.quantile(values, [0.5, *probs], axis=0)
@@ -103,6 +94,47 @@ def summarise(
             attrs["units"] = units
         result[name] = (("series", "time"), out[name].reshape(n_series, n_time), attrs)
     return result
+
+
+@dataclass
+class Predictive:
+    """Posterior predictive draws of any cells of a fitted Panel, in original units.
+
+    Build with :meth:`of`; :meth:`draws` then gives one row per posterior
+    draw for the flat cell indices asked for (series × n_time + time).
+    """
+
+    arrays: dict[str, np.ndarray]
+    mean: np.ndarray
+    scale: np.ndarray
+    fit: Fit
+    n_time: int
+    rng: np.random.Generator
+
+    @classmethod
+    def of(cls, fit: Fit, panel: xr.Dataset, *, seed: int = 0) -> Predictive:
+        """Prepare the draws of a fit of ``panel`` (own paths redrawn exactly)."""
+        _check_same_panel(fit, panel)
+        arrays = draw_arrays(fit.posterior, fit.built)
+        mean, scale = fit.built.mean.values, fit.built.scale.values
+        rng = np.random.default_rng(seed)
+        if "own" in arrays and fit.spec.noise == "normal":
+            z = (forward(panel["value"].values, fit.built.transform) - mean[:, None]) / scale[
+                :, None
+            ]
+            arrays["own_unit"] = condition_own(arrays, z, rng)
+        return cls(arrays, mean, scale, fit, panel.sizes["time"], rng)
+
+    def draws(self, cells: np.ndarray) -> np.ndarray:
+        """Predictive draws at flat ``cells``, shape (draws, cells), original units.
+
+        Memory: about ``(2 + r) × draws × len(cells) × 8`` bytes.
+        """
+        series = cells // self.n_time
+        z = mean_at(self.arrays, cells, self.n_time)
+        spec = self.fit.spec
+        z += _noise(self.rng, z.shape, spec.noise, spec.noise_df) * self.arrays["noise"][:, series]
+        return inverse(self.mean[series] + self.scale[series] * z, self.fit.built.transform)
 
 
 def condition_own(arrays: dict[str, np.ndarray], z: np.ndarray,
