@@ -12,6 +12,7 @@ from pathlib import Path
 
 import click
 from rich.console import Console
+from rich.markup import escape
 from rich.table import Table
 
 import gapband
@@ -56,13 +57,13 @@ def handle_errors(command):
         try:
             return command(*args, **kwargs)
         except (InputError, SpecError) as err:
-            errors.print(f"[bold red]input error:[/] {err}", highlight=False)
+            errors.print(f"[bold red]input error:[/] {escape(str(err))}", highlight=False)
             sys.exit(EXIT_INPUT)
         except UsageError as err:
-            errors.print(f"[bold red]usage error:[/] {err}", highlight=False)
+            errors.print(f"[bold red]usage error:[/] {escape(str(err))}", highlight=False)
             sys.exit(EXIT_USAGE)
         except GapbandError as err:
-            errors.print(f"[bold red]error:[/] {err}", highlight=False)
+            errors.print(f"[bold red]error:[/] {escape(str(err))}", highlight=False)
             sys.exit(EXIT_INTERNAL)
 
     return wrapper
@@ -171,7 +172,7 @@ def fill(input_path, out_dir, model, transform, method, draws, tune, chains, lev
     result, summary = filling.fill(panel, model=model, transform=transform, options=options)
     written = filling.write_fill(result, summary, out_dir, table=table, overwrite=True)
     for warning in summary["diagnostics"].get("warnings", []):
-        errors.print(f"[bold yellow]warning:[/] {warning}", highlight=False)
+        errors.print(f"[bold yellow]warning:[/] {escape(warning)}", highlight=False)
     counts = summary["flags"]["overall"]
     console.print(
         "cells: " + ", ".join(f"{n} {meaning}" for meaning, n in counts.items()), highlight=False
@@ -205,7 +206,7 @@ def capture_table(figures: dict) -> Table:
     """The inspect figures as a terminal table."""
     threshold = figures["capture_threshold"]
     table = Table(
-        title=f"{figures['source']}: {_short(figures['start'])} to {_short(figures['end'])}, "
+        title=f"{escape(str(figures['source']))}: {_short(figures['start'])} to {_short(figures['end'])}, "
         f"step {figures['step']}",
         caption=f"capture threshold {threshold:g} %; gaps by length in steps: "
         "1 | 2-6 | 7-24 | 25-168 | >168",
@@ -215,7 +216,7 @@ def capture_table(figures: dict) -> Table:
         table.add_column(header, justify="left" if header == "series" else "right", no_wrap=True)
     for row in figures["series"]:
         table.add_row(
-            row["series"], f"{row['observed']}/{row['expected']}",
+            escape(row["series"]), f"{row['observed']}/{row['expected']}",
             f"{row['capture_pct']:.1f}",
             "[green]yes[/]" if row["meets_threshold"] else "[red]no[/]",
             str(row["n_gaps"]), row["longest_gap_duration"],
@@ -250,7 +251,8 @@ def main(argv: list[str] | None = None) -> None:
     except SystemExit:
         raise
     except Exception as err:  # an unexpected failure: say so plainly, exit 1
-        errors.print(f"[bold red]internal error:[/] {type(err).__name__}: {err}", highlight=False)
+        errors.print(f"[bold red]internal error:[/] {type(err).__name__}: {escape(str(err))}",
+                     highlight=False)
         errors.print("please report this with the command you ran", highlight=False)
         sys.exit(EXIT_INTERNAL)
 
