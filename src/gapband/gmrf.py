@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 from scipy.linalg import cho_solve_banded, cholesky_banded, solve_banded
+from scipy.linalg.lapack import dtbtrs
 
 #: Smallest innovation variance used, so a path with sd → 0 or ρ → 1 stays
 #: numerically positive definite.
@@ -95,15 +96,54 @@ def draw_banded(ab: np.ndarray, rhs: np.ndarray, rng: np.random.Generator) -> np
     Notes
     -----
     With Q = L·Lᵀ, ``x = Q⁻¹b + L⁻ᵀz`` for standard normal z has covariance
-    Q⁻¹ (Rue & Held, 2005, algorithm 2.5); both solves are banded, so a draw
-    costs O(n·u²).
+    Q⁻¹ (Rue & Held, 2005, algorithm 2.5); the factorisation and both solves
+    are banded, so a draw costs O(n·u²).
     """
-    bandwidth, n = ab.shape[0] - 1, ab.shape[1]
     lower = cholesky_banded(ab, lower=True, check_finite=False)
     mean = cho_solve_banded((lower, True), rhs, check_finite=False)
-    # Lᵀ in upper banded form: upper[u - i, j + i] = L[j + i, j].
-    upper = np.zeros_like(lower)
-    for i in range(bandwidth + 1):
-        upper[bandwidth - i, i:] = lower[i, : n - i]
-    shock = solve_banded((0, bandwidth), upper, rng.standard_normal(n), check_finite=False)
-    return mean + shock
+    return mean + _lower_transpose_solve(lower, rng.standard_normal(ab.shape[1]))
+
+
+def draw_bordered(
+    ab: np.ndarray,
+    rhs: np.ndarray,
+    border: np.ndarray,
+    corner: np.ndarray,
+    corner_rhs: np.ndarray,
+    rng: np.random.Generator,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Exact joint draw of (x, β) whose precision is banded in x with a dense border.
+
+    The joint precision is ``[[Q, B], [Bᵀ, C]]`` with Q banded (n × n, lower
+    banded form ``ab``), B dense (n × m) and C dense (m × m, small); the
+    canonical mean parameters are ``rhs`` (n,) and ``corner_rhs`` (m,). β is
+    drawn from its marginal, whose precision is the Schur complement
+    ``C - Bᵀ·Q⁻¹·B``, then x given β (Rue & Held, 2005, section 2.3: the
+    conditional of a GMRF) — m banded solves, so cost O(n·u·(u + m)).
+
+    Returns
+    -------
+    x : ndarray, shape (n,)
+    beta : ndarray, shape (m,)
+    """
+    lower = cholesky_banded(ab, lower=True, check_finite=False)
+    # With Q = L·Lᵀ: Bᵀ·Q⁻¹·B = VᵀV and Bᵀ·Q⁻¹·b = Vᵀw for V = L⁻¹B, w = L⁻¹b.
+    solved, info = dtbtrs(lower, np.column_stack([border, rhs]), uplo="L", trans="N")
+    if info:
+        raise np.linalg.LinAlgError(f"banded triangular solve failed (info = {info})")
+    v, w = solved[:, :-1], solved[:, -1]
+    schur = corner - v.T @ v
+    schur_rhs = corner_rhs - v.T @ w
+    factor = np.linalg.cholesky(schur)
+    beta = np.linalg.solve(schur, schur_rhs) + np.linalg.solve(
+        factor.T, rng.standard_normal(corner_rhs.size))
+    mean = cho_solve_banded((lower, True), rhs - border @ beta, check_finite=False)
+    return mean + _lower_transpose_solve(lower, rng.standard_normal(ab.shape[1])), beta
+
+
+def _lower_transpose_solve(lower: np.ndarray, z: np.ndarray) -> np.ndarray:
+    """Solve Lᵀ·x = z for a lower banded Cholesky factor L (LAPACK dtbtrs)."""
+    x, info = dtbtrs(lower, z[:, None], uplo="L", trans="T")
+    if info:
+        raise np.linalg.LinAlgError(f"banded triangular solve failed (info = {info})")
+    return x[:, 0]

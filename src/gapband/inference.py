@@ -1,7 +1,8 @@
 """One entry point from a Panel and a spec to posterior draws with diagnostics.
 
-Methods are looked up in :data:`METHODS`, so another one (the exact
-block-Gibbs sampler) slots in beside ``nuts`` and ``advi``.
+Methods are looked up in :data:`METHODS`: ``gibbs`` (the exact block-Gibbs
+sampler of :mod:`gapband.gibbs`), ``nuts`` and ``advi``, all over the one
+model of :mod:`gapband.model`.
 """
 
 from __future__ import annotations
@@ -17,11 +18,12 @@ import numpy as np
 import pymc as pm
 import xarray as xr
 
+from gapband import gibbs
 from gapband.errors import UsageError
 from gapband.model import RAW_VARIABLES, BuiltModel, build, draw_arrays, mean_at
 from gapband.spec import ModelSpec
 
-Method = Literal["nuts", "advi"]
+Method = Literal["nuts", "advi", "gibbs"]
 
 #: Thresholds below which a NUTS fit is reported as not converged.
 R_HAT_MAX = 1.01
@@ -57,16 +59,17 @@ class Fit:
     Attributes
     ----------
     method : str
-        "nuts" or "advi".
+        "nuts", "advi" or "gibbs".
     approximate : bool
         True when the draws come from an approximation (ADVI), not the exact posterior.
     posterior : Dataset
         Posterior draws, dims ``chain``, ``draw`` and the model's dims.
     diagnostics : dict
         JSON-ready: r_hat_max, ess_bulk_min, divergences, n_draws, converged,
-        warnings (list of str), elbo (ADVI only).
+        warnings (list of str), elbo (ADVI only), acceptance (Gibbs only).
     timings : dict of str to float
-        Seconds: build, compile (NUTS with nutpie), sample, diagnostics.
+        Seconds: build, compile (NUTS with nutpie), tune (Gibbs burn-in),
+        sample, diagnostics.
     built : BuiltModel
         The model and the standardisation of each series.
     spec : ModelSpec
@@ -102,11 +105,13 @@ def fit(
     panel : Dataset
         A Panel.
     spec : ModelSpec
-    method : {"nuts", "advi"}
-        NUTS (nutpie when installed, else PyMC's sampler) or mean-field ADVI.
+    method : {"nuts", "advi", "gibbs"}
+        NUTS (nutpie when installed, else PyMC's sampler), mean-field ADVI, or
+        the exact block-Gibbs sampler (:mod:`gapband.gibbs`).
     draws, tune, chains : int
-        Posterior draws per chain, warm-up iterations per chain (NUTS), chains
-        (NUTS; ADVI gives one chain of ``draws`` draws).
+        Posterior draws per chain, warm-up iterations per chain (NUTS; burn-in
+        sweeps for Gibbs), chains (NUTS, Gibbs; ADVI gives one chain of
+        ``draws`` draws).
     seed : int
         Seed of every random choice; the same seed gives the same draws.
     progress : bool
@@ -202,10 +207,19 @@ def _advi(built: BuiltModel, *, draws: int, tune: int, chains: int, seed: int,
     return idata.posterior, {"elbo": elbo}, timings
 
 
+def _gibbs(built: BuiltModel, *, draws: int, tune: int, chains: int, seed: int,
+           progress: bool, max_iterations: int) -> tuple[xr.Dataset, dict, dict]:
+    coords = {name: np.asarray(values) for name, values in built.model.coords.items()}
+    return gibbs.sample(built.z, built.fourier.values, built.spec, rank=built.rank,
+                        ar_factors=built.ar_factors, coords=coords, draws=draws, tune=tune,
+                        chains=chains, seed=seed, progress=progress)
+
+
 #: Inference methods by name; each returns (posterior, diagnostics, timings).
 METHODS: dict[str, Callable[..., tuple[xr.Dataset, dict, dict]]] = {
     "nuts": _nuts,
     "advi": _advi,
+    "gibbs": _gibbs,
 }
 
 

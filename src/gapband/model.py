@@ -20,9 +20,10 @@ Prior forms, chosen so that an exact block-Gibbs sampler can share them:
 
 Every scale has a HalfNormal prior on the sd: given the rest, the variance
 then has a generalised inverse Gaussian conditional, which can be drawn
-exactly (scipy.stats.geninvgauss). Sign and permutation of the factors are
-not identified; only the predictions, which are invariant, are used and
-diagnosed.
+exactly (scipy.stats.geninvgauss); the block-Gibbs sampler
+(:mod:`gapband.gibbs`) does so and samples this same model. Sign and
+permutation of the factors are not identified; only the predictions, which
+are invariant, are used and diagnosed.
 
 Only observed cells enter the likelihood (gathered by flat index).
 """
@@ -72,6 +73,9 @@ class BuiltModel:
     fourier : DataArray, dims ("time", "harmonic")
         The seasonal design matrix.
     spec : ModelSpec
+    z : ndarray, shape (series, time)
+        The standardised (transformed) values the model is fitted to, NaN
+        where missing; samplers outside PyMC (``gibbs``) read the data here.
     """
 
     model: pm.Model
@@ -83,6 +87,7 @@ class BuiltModel:
     ar_factors: int
     fourier: xr.DataArray
     spec: ModelSpec
+    z: np.ndarray
 
 
 def build(panel: xr.Dataset, spec: ModelSpec) -> BuiltModel:
@@ -155,6 +160,7 @@ def build(panel: xr.Dataset, spec: ModelSpec) -> BuiltModel:
         ar_factors=ar_factors,
         fourier=fourier,
         spec=spec,
+        z=z,
     )
 
 

@@ -1,0 +1,778 @@
+"""Exact block-Gibbs sampler for the gapband model (numpy and scipy only).
+
+The model and its priors are those of :mod:`gapband.model`, unchanged (HalfNormal
+priors on every sd, Uniform priors on the AR coefficients' partial
+autocorrelations and on the own AR(1) coefficients); this module draws from
+the same posterior by cycling through exact conditional distributions
+(block Gibbs; Gelfand & Smith, JASA 1990). One sweep:
+
+1. each series' own sd, own AR(1) coefficient and noise sd, with the own
+   path integrated out: the residual of a series given the shared factors is
+   an AR(1) path plus noise, whose density is exact via one banded Cholesky
+   of all series (:func:`_own_marginal`); an adaptive random-walk Metropolis
+   step per series (the Uniform and HalfNormal priors are not conjugate here);
+2. each series' loadings ``L``, ``B``: a Bayesian linear regression on the
+   factor paths, batched over series, with the own path again integrated out
+   (its covariance enters through tridiagonal solves, by Woodbury);
+3. all paths jointly — the trend and short-term AR paths of every factor, the
+   own AR(1) path of every series — with the Fourier coefficients of every
+   factor: a Gaussian Markov random field in time, banded when the state is
+   ordered time first, plus a dense border for the coefficients; drawn
+   exactly (:func:`gapband.gmrf.draw_bordered`). Drawing together what adds
+   up to each observation is what keeps the sampler mixing when the noise
+   is small, as it is in real monitoring data;
+4. Student-t noise only: one Gamma((ν+1)/2, (ν + r²/σ²)/2) precision weight
+   per observed cell (normal scale mixture; Geweke, J. Appl. Econometrics 1993);
+5. noise sd and trend step sd given the paths: with a HalfNormal(c) prior on
+   the sd and n Gaussian terms with sum of squares S, the variance has the
+   generalised inverse Gaussian conditional ``∝ v^((1-n)/2 - 1)·exp(-(v/c² +
+   S/v)/2)``, drawn exactly with scipy.stats.geninvgauss;
+6. the partial autocorrelations of each AR(p) factor: an independence
+   Metropolis-Hastings step whose proposal is the least-squares regression on
+   the path (stationarity kept: a non-stationary proposal is rejected);
+7. a group move per factor along the scale the likelihood cannot see
+   (loadings × c, path / c), which only the priors decide.
+
+Steps 1 and 2 integrate the own paths out and step 3 draws them, the order a
+partially collapsed Gibbs sampler needs (van Dyk & Park, JASA 2008).
+Metropolis step sizes adapt during burn-in only. Quantities fixed by
+``spec.fixed`` are held at their value. Only observed cells enter the
+likelihood.
+
+Cost per sweep is dominated by step 3: O(T·d²·(lags + 1)²) with d = rank +
+AR factors + series (own paths in the state), so it grows with the square
+of the number of series when ``own_ar`` is on.
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+from dataclasses import dataclass
+
+import numpy as np
+import xarray as xr
+from scipy.linalg import cho_solve_banded, cholesky_banded
+from scipy.stats import geninvgauss
+
+from gapband.gmrf import draw_banded, draw_bordered
+from gapband.spec import ModelSpec
+
+#: Floors that keep variances and sums of squares strictly positive.
+_TINY = 1e-12
+
+#: Independence proposals for the AR coefficients are widened by this factor
+#: so their tails cover the target's (a narrower proposal than the target
+#: makes an independence sampler sticky).
+_PROPOSAL_WIDEN = 1.25
+
+#: Group-move Metropolis steps along each factor's scale per sweep (cheap: priors only).
+_SCALE_STEPS = 5
+
+#: Collapsed Metropolis steps on each series' own sd, coefficient and noise sd per sweep.
+_OWN_STEPS = 3
+
+
+@dataclass
+class _State:
+    loading: np.ndarray  # (N, r)
+    trend: np.ndarray  # (r, T)
+    coef: np.ndarray  # (r, H)
+    short_loading: np.ndarray  # (N, rb)
+    ar: np.ndarray  # (rb, T)
+    pacf: np.ndarray  # (rb, p)
+    own_path: np.ndarray  # (N, T): own sd times the unit path
+    own_sd: np.ndarray  # (N,)
+    own_rho: np.ndarray  # (N,)
+    noise: np.ndarray  # (N,)
+    innovation: np.ndarray  # (r,)
+    weight: np.ndarray  # (N, T): Student-t precision weights (1 for normal noise)
+
+
+class _Sampler:
+    """One chain of the block-Gibbs sampler over fixed data."""
+
+    def __init__(self, z: np.ndarray, fourier: np.ndarray, spec: ModelSpec, rank: int,
+                 ar_factors: int, rng: np.random.Generator):
+        self.spec = spec
+        self.rng = rng
+        self.seen = ~np.isnan(z)
+        self.z = np.where(self.seen, z, 0.0)
+        self.fourier = fourier
+        self.rank, self.ar_factors, self.order = rank, ar_factors, spec.ar_order
+        self.accepted = {"ar_pacf": 0, "own": 0, "rescale": 0}
+        self.proposed = {"ar_pacf": 0, "own": 0, "rescale": 0}
+        self.scale_step = 0.05
+        self.scale_tuned = 0
+        self.own_step = np.full(z.shape[0], 0.3)
+        self.own_shape = np.broadcast_to(np.eye(3), (z.shape[0], 3, 3)).copy()
+        self.own_history: list[np.ndarray] = []
+        self.own_tuned = 0
+
+    # -- initial point ---------------------------------------------------------
+    def initial(self) -> _State:
+        """SVD of the mean-imputed panel, jittered per chain; scales at prior scale."""
+        spec, rng = self.spec, self.rng
+        n_series, n_time = self.z.shape
+        r, rb, h = self.rank, self.ar_factors, self.fourier.shape[1]
+        counts = np.maximum(self.seen.sum(axis=1, keepdims=True), 1)
+        centre = self.z.sum(axis=1, keepdims=True) / counts
+        filled = np.where(self.seen, self.z, centre)
+        u, s, vt = np.linalg.svd(filled, full_matrices=False)
+        loading = u[:, :r] * s[:r] / np.sqrt(n_time)
+        loading = loading * (1.0 + 0.1 * rng.standard_normal(loading.shape))
+        trend = vt[:r] * np.sqrt(n_time)
+        if spec.fixed.loading is not None:
+            loading = np.full((n_series, r), spec.fixed.loading)
+        return _State(
+            loading=loading,
+            trend=trend,
+            coef=np.zeros((r, h)),
+            short_loading=0.1 * rng.standard_normal((n_series, rb)),
+            ar=np.zeros((rb, n_time)),
+            pacf=np.zeros((rb, self.order)),
+            own_path=np.zeros((n_series, n_time)),
+            own_sd=np.full(n_series, _given(spec.fixed.own, 0.5 * spec.priors.own)),
+            own_rho=np.full(n_series, 0.5),
+            noise=np.full(n_series, _given(spec.fixed.noise, 0.5)),
+            innovation=np.full(r, _given(spec.fixed.trend_innovation,
+                                         spec.priors.trend_innovation)),
+            weight=np.ones((n_series, n_time)),
+        )
+
+    # -- one sweep -------------------------------------------------------------
+    def sweep(self, s: _State, tuning: bool = False) -> None:
+        """Update every block once, in place; ``tuning`` adapts MH step sizes (burn-in).
+
+        The own paths are integrated out of the first two blocks and drawn in
+        the third (a partially collapsed Gibbs sampler; van Dyk & Park, JASA
+        2008: each marginalised draw is followed by a draw of what it left out).
+        """
+        if self.spec.own_ar:
+            for _ in range(_OWN_STEPS):
+                self._own_collapsed(s, tuning)
+        self._loadings(s)
+        self._paths(s)
+        if self.spec.noise == "student_t":
+            self._weights(s)
+        if self.spec.fixed.noise is None:
+            resid = np.where(self.seen, self.z - self._mean(s), 0.0)
+            s.noise = np.sqrt(_gig_variance(
+                (s.weight * resid**2).sum(axis=1), self.seen.sum(axis=1),
+                self.spec.priors.noise, self.rng))
+        if self.spec.fixed.trend_innovation is None:
+            steps = np.diff(s.trend, axis=1)
+            s.innovation = np.sqrt(_gig_variance(
+                (steps**2).sum(axis=1), np.full(self.rank, steps.shape[1]),
+                self.spec.priors.trend_innovation, self.rng))
+        if self.ar_factors:
+            self._ar_pacf(s)
+        for _ in range(_SCALE_STEPS):
+            self._rescale(s, tuning)
+
+    def _rescale(self, s: _State, tuning: bool) -> None:
+        """Move each factor along the direction the likelihood cannot see.
+
+        Scaling a factor's loadings by c and its path (with its Fourier
+        coefficients and step sd) by 1/c leaves every prediction unchanged,
+        so only the priors decide such a move; Gibbs blocks cross this ridge
+        slowly. A Metropolis step on log c (jointly with the partial
+        autocorrelations, on the atanh scale, for AR factors) with the
+        Jacobian of the map is an exact group move (Liu & Sabatti, JASA 2000).
+        """
+        rng, priors = self.rng, self.spec.priors
+        n_series, n_time = self.z.shape
+        log_c = self.scale_step * rng.standard_normal(self.rank + self.ar_factors)
+        c = np.exp(log_c)
+        accept = np.zeros(c.size, dtype=bool)
+        if self.spec.fixed.loading is None:
+            tau_free = self.spec.fixed.trend_innovation is None
+            h = s.coef.shape[1]
+            for k in range(self.rank):
+                new_tau = s.innovation[k] / c[k] if tau_free else s.innovation[k]
+                log_ratio = (
+                    _walk_logp(s.trend[k] / c[k], new_tau, priors.level)
+                    - _walk_logp(s.trend[k], s.innovation[k], priors.level)
+                    - 0.5 * ((c[k] ** 2 - 1) * (s.loading[:, k] ** 2).sum() / priors.loading**2
+                             + (c[k] ** -2 - 1) * (s.coef[k] ** 2).sum() / priors.seasonal**2)
+                    + (n_series - n_time - h - tau_free) * log_c[k])
+                if tau_free:
+                    log_ratio -= 0.5 * (new_tau**2 - s.innovation[k] ** 2) / (
+                        priors.trend_innovation**2)
+                if np.log(rng.random()) < log_ratio:
+                    accept[k] = True
+                    s.loading[:, k] *= c[k]
+                    s.trend[k] /= c[k]
+                    s.coef[k] /= c[k]
+                    s.innovation[k] = new_tau
+        for j in range(self.ar_factors):
+            i = self.rank + j
+            shift = self.scale_step * 0.2 * rng.standard_normal(self.order)
+            pacf = np.tanh(np.arctanh(np.clip(s.pacf[j], -0.999999, 0.999999)) + shift)
+            log_ratio = (
+                _ar_loglik(s.ar[j] / c[i], pacf) - _ar_loglik(s.ar[j], s.pacf[j])
+                - 0.5 * (c[i] ** 2 - 1) * (s.short_loading[:, j] ** 2).sum() / priors.loading**2
+                + (n_series - n_time) * log_c[i]
+                + np.log1p(-pacf**2).sum() - np.log1p(-s.pacf[j] ** 2).sum())
+            if np.log(rng.random()) < log_ratio:
+                accept[i] = True
+                s.short_loading[:, j] *= c[i]
+                s.ar[j] /= c[i]
+                s.pacf[j] = pacf
+        self.accepted["rescale"] += int(accept.sum())
+        self.proposed["rescale"] += accept.size
+        if tuning:
+            self.scale_tuned += 1
+            gain = 1.0 / (1.0 + self.scale_tuned) ** 0.6
+            self.scale_step *= np.exp(gain * (accept.mean() - 0.3))
+
+    def _season(self, s: _State) -> np.ndarray:
+        return s.coef @ self.fourier.T  # (r, T)
+
+    def _mean(self, s: _State, own: bool = True) -> np.ndarray:
+        mean = s.loading @ (s.trend + self._season(s))
+        if self.ar_factors:
+            mean += s.short_loading @ s.ar
+        if own and self.spec.own_ar:
+            mean += s.own_path
+        return mean
+
+    def _cell_weight(self, s: _State) -> np.ndarray:
+        """Precision of each cell's observation (0 where unobserved), (N, T)."""
+        return self.seen * s.weight / np.maximum(s.noise, _TINY)[:, None] ** 2
+
+    def _paths(self, s: _State) -> None:
+        """Trend, AR and own paths of all factors and series jointly: one banded GMRF.
+
+        The state at time t is (trend_1..r, ar_1..rb, own_1..N); ordered time
+        first, its precision has lower bandwidth d·(lags + 1) - 1 with d the
+        state size. Drawing the components that add up to each observation
+        together is what keeps the sampler mixing when the noise is small
+        (a path-by-path update can then only move in tiny steps).
+        """
+        r, rb, p = self.rank, self.ar_factors, self.order
+        n_series, n_time = self.z.shape
+        n_own = n_series if self.spec.own_ar else 0
+        d = r + rb + n_own
+        lags = max(1, p if rb else 1)
+        bandwidth = d * (lags + 1) - 1
+        ab = np.zeros((bandwidth + 1, n_time * d))
+        times = np.arange(n_time) * d
+
+        def add(rows, cols, values):
+            ab[rows - cols, cols] += values
+
+        level_precision = 1.0 / self.spec.priors.level**2
+        for k in range(r):
+            step_precision = 1.0 / max(s.innovation[k], np.sqrt(_TINY)) ** 2
+            diagonal = np.full(n_time, 2.0 * step_precision)
+            diagonal[[0, -1]] = step_precision
+            diagonal[0] += level_precision
+            add(times + k, times + k, diagonal)
+            add(times[1:] + k, times[:-1] + k, -step_precision)
+        for j in range(rb):
+            coefs, variances = _ar_rows(s.pacf[j], n_time)
+            k = r + j
+            for i in range(p + 1):
+                for m in range(i, p + 1):  # the lower entry Q[t-i, t-m], i <= m
+                    t = np.arange(m, n_time)
+                    add(times[t - i] + k, times[t - m] + k,
+                        coefs[t, i] * coefs[t, m] / variances[t])
+        if n_own:
+            own = r + rb + np.arange(n_series)
+            rho = s.own_rho[:, None]
+            innovation = np.maximum(s.own_sd**2 * (1.0 - s.own_rho**2), _TINY)[:, None]
+            diagonal = np.broadcast_to((1.0 + rho**2) / innovation, (n_series, n_time)).copy()
+            diagonal[:, [0, -1]] = 1.0 / innovation
+            add(times[None, :] + own[:, None], times[None, :] + own[:, None], diagonal)
+            add(times[None, 1:] + own[:, None], times[None, :-1] + own[:, None],
+                np.broadcast_to(-rho / innovation, (n_series, n_time - 1)))
+
+        # Data: observation n at time t sees c_n·x_t with c_n = (L_n, B_n, unit_n),
+        # plus (L_n ⊗ F_t)·β for the Fourier coefficients β.
+        shared = np.concatenate([s.loading, s.short_loading], axis=1)  # (N, r + rb)
+        design = np.concatenate([shared, np.eye(n_series)[:, :n_own]], axis=1)  # (N, d)
+        weight = self._cell_weight(s)
+        rows, cols = np.tril_indices(d)
+        data = np.einsum("nt,nk,nl->tkl", weight, shared, shared, optimize=True)
+        if n_own:
+            full = np.zeros((n_time, d, d))
+            full[:, : r + rb, : r + rb] = data
+            full[:, r + rb :, : r + rb] = np.einsum("nt,nk->tnk", weight, shared)
+            full[:, np.arange(r + rb, d), np.arange(r + rb, d)] = weight.T
+            data = full
+        add(times[:, None] + rows[None, :], times[:, None] + cols[None, :], data[:, rows, cols])
+        weighted = weight * self.z
+        rhs = np.einsum("nt,nk->tk", weighted, design, optimize=True).ravel()
+        harmonics = self.fourier.shape[1]
+        if harmonics:
+            fourier = self.fourier
+            cross = np.einsum("nt,nk,nj->tkj", weight, design, s.loading, optimize=True)
+            border = (cross[:, :, :, None] * fourier[:, None, None, :]).reshape(
+                n_time * d, r * harmonics)
+            per_time = np.einsum("nt,nk,nl->tkl", weight, s.loading, s.loading, optimize=True)
+            corner = np.einsum("tkl,th,tg->khlg", per_time, fourier, fourier,
+                               optimize=True).reshape(r * harmonics, r * harmonics)
+            corner += np.eye(r * harmonics) / self.spec.priors.seasonal**2
+            corner_rhs = np.einsum("nt,nk,th->kh", weighted, s.loading, fourier,
+                                   optimize=True).ravel()
+            x, beta = draw_bordered(ab, rhs, border, corner, corner_rhs, self.rng)
+            s.coef = beta.reshape(r, harmonics)
+        else:
+            x = draw_banded(ab, rhs, self.rng)
+        x = x.reshape(n_time, d)
+        s.trend = x[:, :r].T.copy()
+        s.ar = x[:, r : r + rb].T.copy()
+        if n_own:
+            s.own_path = x[:, r + rb :].T.copy()
+
+    def _loadings(self, s: _State) -> None:
+        """Each series' loadings: Bayesian linear regression on the paths, batched.
+
+        With own AR(1) paths, these are integrated out: the regression error
+        of series n is then the AR(1) path plus noise, with covariance K_n,
+        and ``K⁻¹ = W - W(Q + W)⁻¹W`` (Woodbury) needs only tridiagonal solves.
+        """
+        fixed = self.spec.fixed.loading is not None
+        if fixed and not self.ar_factors:
+            return
+        target = self.z.copy()
+        paths = [s.ar] if self.ar_factors else []
+        if fixed:
+            target -= s.loading @ (s.trend + self._season(s))
+        else:
+            paths.insert(0, s.trend + self._season(s))
+        design = np.concatenate(paths, axis=0)  # (k, T)
+        weight = self._cell_weight(s)
+        precision = np.einsum("nt,kt,lt->nkl", weight, design, design, optimize=True)
+        rhs = np.einsum("nt,kt->nk", weight * target, design, optimize=True)
+        if self.spec.own_ar:
+            n_series, n_time = self.z.shape
+            weighted = np.concatenate([weight[:, :, None] * design.T[None],
+                                       (weight * target)[:, :, None]], axis=2)  # (N, T, k + 1)
+            lower = cholesky_banded(_own_band(s.own_sd, s.own_rho, weight), lower=True,
+                                    check_finite=False)
+            solved = cho_solve_banded((lower, True), weighted.reshape(n_series * n_time, -1),
+                                      check_finite=False).reshape(weighted.shape)
+            correction = np.einsum("ntk,ntl->nkl", weighted[:, :, :-1], solved, optimize=True)
+            precision -= correction[:, :, :-1]
+            rhs -= correction[:, :, -1]
+        precision += np.eye(design.shape[0]) / self.spec.priors.loading**2
+        drawn = _draw_dense(precision, rhs, self.rng)
+        if not fixed:
+            s.loading = drawn[:, : self.rank].copy()
+        if self.ar_factors:
+            s.short_loading = drawn[:, -self.ar_factors:].copy()
+
+    def _own_collapsed(self, s: _State, tuning: bool) -> None:
+        """Own sd, own AR(1) coefficient and noise sd with the own path integrated out.
+
+        Given everything but the own path, the residual of each series is an
+        AR(1) path plus noise, whose marginal density is exact and cheap
+        (:func:`_own_marginal`); a random-walk Metropolis step on (log sd,
+        logit rho, log noise sd) under it, followed by a fresh draw of the
+        path, moves along the sd/noise trade-off that a path-given-scale
+        update would cross only slowly (collapsed Gibbs; Liu, JASA 1994).
+        """
+        spec, rng = self.spec, self.rng
+        resid = self.z - self._mean(s, own=False)
+        base = self.seen * s.weight
+        free = np.array([spec.fixed.own is None, True, spec.fixed.noise is None])
+        current = np.column_stack([np.log(s.own_sd), _logit(s.own_rho), np.log(s.noise)])
+
+        def log_post(theta):
+            sd, rho, noise = np.exp(theta[:, 0]), _expit(theta[:, 1]), np.exp(theta[:, 2])
+            value = _own_marginal(resid, base, sd, rho, noise)
+            # Priors in the transformed coordinates (with their Jacobians):
+            # HalfNormal on the sds, Uniform(0, 1) on rho.
+            value += np.log(rho) + np.log1p(-rho)
+            if free[0]:
+                value += theta[:, 0] - 0.5 * (sd / spec.priors.own) ** 2
+            if free[2]:
+                value += theta[:, 2] - 0.5 * (noise / spec.priors.noise) ** 2
+            return value
+
+        now = log_post(current)
+        shock = np.einsum("nij,nj->ni", self.own_shape, rng.standard_normal(current.shape))
+        proposal = current + self.own_step[:, None] * free * shock
+        inside = np.abs(proposal[:, 1]) < 30.0  # rho within (0, 1) in floating point
+        then = np.where(inside, log_post(np.where(inside[:, None], proposal, current)), -np.inf)
+        accept = np.log(rng.random(now.size)) < then - now
+        current = np.where(accept[:, None], proposal, current)
+        s.own_sd, s.own_rho, s.noise = (np.exp(current[:, 0]), _expit(current[:, 1]),
+                                        np.exp(current[:, 2]))
+        self.accepted["own"] += int(accept.sum())
+        self.proposed["own"] += accept.size
+        if tuning:
+            self._adapt_own(current, accept, free)
+
+    def _adapt_own(self, current: np.ndarray, accept: np.ndarray, free: np.ndarray) -> None:
+        """Adapt the own-scale proposal during burn-in.
+
+        The step size follows Robbins-Monro towards 30 % acceptance, the
+        proposal's shape the covariance of the draws so far (adaptive
+        Metropolis; Haario, Saksman & Tamminen, Bernoulli 2001).
+        """
+        self.own_tuned += 1
+        gain = 1.0 / (1.0 + self.own_tuned) ** 0.6
+        self.own_step *= np.exp(gain * (accept - 0.3))
+        self.own_history.append(current)
+        if self.own_tuned >= 150 and self.own_tuned % 50 == 0:
+            history = np.stack(self.own_history[len(self.own_history) // 3 :], axis=1)
+            centred = history - history.mean(axis=1, keepdims=True)
+            cov = np.einsum("nsi,nsj->nij", centred, centred) / history.shape[1]
+            cov = cov * np.outer(free, free) + 1e-6 * np.eye(3)
+            scale = np.sqrt(np.einsum("nii->ni", cov)).mean(axis=1)
+            self.own_shape = np.linalg.cholesky(cov / scale[:, None, None] ** 2)
+            self.own_step = 2.38 / np.sqrt(free.sum()) * scale
+
+    def _ar_pacf(self, s: _State) -> None:
+        """AR(p) coefficients of each short-term factor: independence MH, kept stationary."""
+        p = self.order
+        n_time = s.ar.shape[1]
+        for j in range(self.ar_factors):
+            x = s.ar[j]
+            lagged = np.column_stack([x[p - i : n_time - i] for i in range(1, p + 1)])
+            y = x[p:]
+            gram = lagged.T @ lagged + _TINY * np.eye(p)
+            centre = np.linalg.solve(gram, lagged.T @ y)
+            variance = max(float(((y - lagged @ centre) ** 2).mean()), 1e-6)
+            cov = _PROPOSAL_WIDEN**2 * variance * np.linalg.inv(gram)
+            chol = np.linalg.cholesky(cov)
+            phi = centre + chol @ self.rng.standard_normal(p)
+            proposal = _step_down(phi)
+            self.proposed["ar_pacf"] += 1
+            if np.any(np.abs(proposal) >= 1.0):
+                continue  # outside the stationary region: the target density is 0
+
+            current_phi = _levinson(s.pacf[j])[0][-1]
+            # Proposal densities (normal in φ) and targets (uniform prior on the
+            # partial autocorrelations, so the density in φ carries 1/|∂φ/∂κ|).
+            w_new = np.linalg.solve(chol, phi - centre)
+            w_old = np.linalg.solve(chol, current_phi - centre)
+            log_ratio = (_ar_loglik(x, proposal) - _log_jacobian(proposal)
+                         - _ar_loglik(x, s.pacf[j]) + _log_jacobian(s.pacf[j])
+                         + 0.5 * float(w_new @ w_new) - 0.5 * float(w_old @ w_old))
+            if np.log(self.rng.random()) < log_ratio:
+                s.pacf[j] = proposal
+                self.accepted["ar_pacf"] += 1
+
+    def _weights(self, s: _State) -> None:
+        """Student-t noise as a normal scale mixture: Gamma precision weight per cell."""
+        df = self.spec.noise_df
+        resid = self.z - self._mean(s)
+        rate = 0.5 * (df + resid**2 / np.maximum(s.noise, _TINY)[:, None] ** 2)
+        s.weight = np.where(self.seen,
+                            self.rng.gamma(0.5 * (df + 1.0), 1.0 / rate), 1.0)
+
+
+def sample(
+    z: np.ndarray,
+    fourier: np.ndarray,
+    spec: ModelSpec,
+    *,
+    rank: int,
+    ar_factors: int,
+    coords: dict,
+    draws: int = 1000,
+    tune: int = 1000,
+    chains: int = 2,
+    seed: int = 0,
+    progress: bool = False,
+) -> tuple[xr.Dataset, dict, dict]:
+    """Draw from the posterior of the gapband model by block Gibbs.
+
+    Parameters
+    ----------
+    z : ndarray, shape (series, time)
+        Standardised (transformed) data, NaN where missing.
+    fourier : ndarray, shape (time, harmonic)
+        The seasonal design matrix.
+    spec : ModelSpec
+    rank, ar_factors : int
+        Number of shared and short-term factors.
+    coords : dict
+        Coordinate values of ``series``, ``time``, ``factor``, ``short_factor``,
+        ``lag`` and ``harmonic``.
+    draws, tune, chains : int
+        Kept sweeps per chain, burn-in sweeps per chain, chains.
+    seed : int
+        Each chain's generator is spawned from ``numpy.random.SeedSequence(seed)``;
+        the same seed gives the same draws.
+    progress : bool
+        Print a line to stderr every tenth of the sweeps.
+
+    Returns
+    -------
+    posterior : Dataset
+        Dims (chain, draw, ...) with the names and dims of the PyMC model's
+        posterior (``loading``, ``trend_innovation``, ``level``, ``trend``,
+        ``seasonal_coef``, ``ar_pacf``, ``ar_coef``, ``ar``, ``short_loading``,
+        ``own_rho``, ``own``, ``own_unit``, ``noise``, as the spec has them).
+    diagnostics : dict
+        ``sampler``, ``divergences`` (always 0), ``acceptance`` of the
+        Metropolis-Hastings steps.
+    timings : dict
+        Seconds of burn-in (``tune``) and kept sweeps (``sample``).
+    """
+    streams = np.random.SeedSequence(seed).spawn(chains)
+    kept: list[dict[str, np.ndarray]] = []
+    accepted: dict[str, int] = {}
+    proposed: dict[str, int] = {}
+    timings = {"tune": 0.0, "sample": 0.0}
+    total = chains * (tune + draws)
+    every = max(1, total // 10)
+    done = 0
+    for chain, stream in enumerate(streams):
+        sampler = _Sampler(z, fourier, spec, rank, ar_factors, np.random.default_rng(stream))
+        state = sampler.initial()
+        store = _Store(draws, z.shape, rank, ar_factors, fourier.shape[1], spec)
+        for phase, sweeps in (("tune", tune), ("sample", draws)):
+            start = time.perf_counter()
+            for i in range(sweeps):
+                sampler.sweep(state, tuning=phase == "tune")
+                if phase == "sample":
+                    store.keep(i, state)
+                done += 1
+                if progress and done % every == 0:
+                    print(f"gibbs: chain {chain + 1}/{chains}, {done}/{total} sweeps",
+                          file=sys.stderr, flush=True)
+            timings[phase] += time.perf_counter() - start
+        kept.append(store.arrays)
+        for name in sampler.accepted:
+            accepted[name] = accepted.get(name, 0) + sampler.accepted[name]
+            proposed[name] = proposed.get(name, 0) + sampler.proposed[name]
+    posterior = _dataset(kept, coords, rank, ar_factors, fourier.shape[1], spec)
+    acceptance = {name: accepted[name] / proposed[name] for name in accepted if proposed[name]}
+    diagnostics = {"sampler": "gibbs", "divergences": 0, "acceptance": acceptance}
+    return posterior, diagnostics, timings
+
+
+class _Store:
+    """Kept draws of one chain, in the PyMC model's variable names."""
+
+    def __init__(self, draws, shape, rank, ar_factors, harmonics, spec: ModelSpec):
+        n_series, n_time = shape
+        sizes = {"loading": (n_series, rank), "trend_innovation": (rank,), "level": (rank,),
+                 "trend": (rank, n_time), "noise": (n_series,)}
+        if harmonics:
+            sizes["seasonal_coef"] = (rank, harmonics)
+        if ar_factors:
+            sizes |= {"ar_pacf": (ar_factors, spec.ar_order),
+                      "ar_coef": (ar_factors, spec.ar_order),
+                      "ar": (ar_factors, n_time), "short_loading": (n_series, ar_factors)}
+        if spec.own_ar:
+            sizes |= {"own_rho": (n_series,), "own": (n_series,),
+                      "own_unit": (n_series, n_time)}
+        self.arrays = {name: np.empty((draws, *size)) for name, size in sizes.items()}
+
+    def keep(self, i: int, s: _State) -> None:
+        values = {"loading": s.loading, "trend_innovation": s.innovation,
+                  "level": s.trend[:, 0], "trend": s.trend, "noise": s.noise,
+                  "seasonal_coef": s.coef, "ar_pacf": s.pacf, "ar": s.ar,
+                  "short_loading": s.short_loading, "own_rho": s.own_rho, "own": s.own_sd}
+        if "ar_coef" in self.arrays:
+            values["ar_coef"] = np.array([_levinson(k)[0][-1] for k in s.pacf])
+        if "own_unit" in self.arrays:
+            values["own_unit"] = s.own_path / np.maximum(s.own_sd, np.sqrt(_TINY))[:, None]
+        for name, array in self.arrays.items():
+            array[i] = values[name]
+
+
+_DIMS = {
+    "loading": ("series", "factor"), "trend_innovation": ("factor",), "level": ("factor",),
+    "trend": ("factor", "time"), "seasonal_coef": ("factor", "harmonic"),
+    "ar_pacf": ("short_factor", "lag"), "ar_coef": ("short_factor", "lag"),
+    "ar": ("short_factor", "time"), "short_loading": ("series", "short_factor"),
+    "own_rho": ("series",), "own": ("series",), "own_unit": ("series", "time"),
+    "noise": ("series",),
+}
+
+
+def _dataset(kept, coords, rank, ar_factors, harmonics, spec) -> xr.Dataset:
+    data = {
+        name: (("chain", "draw", *_DIMS[name]), np.stack([chain[name] for chain in kept]))
+        for name in kept[0]
+    }
+    n_chain, n_draw = len(kept), next(iter(kept[0].values())).shape[0]
+    used = {dim for dims in _DIMS.values() for dim in dims if dim in coords}
+    return xr.Dataset(data, coords={"chain": np.arange(n_chain), "draw": np.arange(n_draw)}
+                      | {dim: coords[dim] for dim in used})
+
+
+def _own_band(sd: np.ndarray, rho: np.ndarray, weight: np.ndarray) -> np.ndarray:
+    """Lower banded Q + W of every series' own AR(1) path, stacked block-diagonally.
+
+    Returns shape (2, N·T): one tridiagonal block per series (marginal sd
+    ``sd``, coefficient ``rho``) plus the observation precision ``weight``
+    (N, T) on the diagonal, without coupling between consecutive series.
+    """
+    n_series, n_time = weight.shape
+    innovation = np.maximum(np.maximum(sd, np.sqrt(_TINY)) ** 2 * (1.0 - rho**2), _TINY)[:, None]
+    ab = np.empty((2, n_series, n_time))
+    ab[0] = (1.0 + rho[:, None] ** 2) / innovation
+    ab[0, :, [0, -1]] = 1.0 / innovation[:, 0]
+    ab[1] = -rho[:, None] / innovation
+    ab[1, :, -1] = 0.0
+    ab[0] += weight
+    return ab.reshape(2, -1)
+
+
+def _own_marginal(resid: np.ndarray, base: np.ndarray, sd: np.ndarray, rho: np.ndarray,
+                  noise: np.ndarray) -> np.ndarray:
+    """Log density of each row's observed residuals: stationary AR(1) path plus noise.
+
+    Parameters
+    ----------
+    resid : ndarray, shape (N, T)
+        Residuals (any value where unobserved).
+    base : ndarray, shape (N, T)
+        Observation precision before the noise sd: 0 where unobserved, the
+        Student-t weight (1 for normal noise) where observed.
+    sd, rho, noise : ndarray, shape (N,)
+        Marginal sd and coefficient of the path, noise sd.
+
+    Notes
+    -----
+    With path precision Q, observation precision W and b = W·r, the
+    marginal log density is ``-r'Wr/2 + b'(Q + W)⁻¹b/2 + (log|W| + log|Q|
+    - log|Q + W|)/2 - n/2·log 2π`` (Rue & Held, 2005, section 2.3: the
+    Gaussian integral). All rows share one banded Cholesky factorisation.
+    """
+    n_series, n_time = resid.shape
+    weight = base / noise[:, None] ** 2
+    rhs = weight * resid
+    lower = cholesky_banded(_own_band(sd, rho, weight), lower=True, check_finite=False)
+    solved = cho_solve_banded((lower, True), rhs.ravel(), check_finite=False)
+    seen = base > 0
+    log_q = -n_time * np.log(np.maximum(sd, _TINY) ** 2) - (n_time - 1) * np.log1p(-rho**2)
+    return (-0.5 * (weight * resid**2).sum(axis=1)
+            + 0.5 * (rhs * solved.reshape(n_series, n_time)).sum(axis=1)
+            + 0.5 * np.where(seen, np.log(np.where(seen, weight, 1.0)), 0.0).sum(axis=1)
+            + 0.5 * log_q
+            - np.log(lower[0].reshape(n_series, n_time)).sum(axis=1)
+            - 0.5 * seen.sum(axis=1) * np.log(2.0 * np.pi))
+
+
+def _walk_logp(path: np.ndarray, step_sd: float, level_sd: float) -> float:
+    """Log density of a Gaussian random walk with start ~ N(0, level_sd²)."""
+    steps = np.diff(path)
+    step_sd = max(step_sd, np.sqrt(_TINY))
+    return float(-0.5 * (path[0] / level_sd) ** 2 - 0.5 * (steps**2).sum() / step_sd**2
+                 - steps.size * np.log(step_sd))
+
+
+def _logit(p: np.ndarray) -> np.ndarray:
+    p = np.clip(p, 1e-12, 1.0 - 1e-12)
+    return np.log(p) - np.log1p(-p)
+
+
+def _expit(x: np.ndarray) -> np.ndarray:
+    return 1.0 / (1.0 + np.exp(-x))
+
+
+def _given(fixed: float | None, default: float) -> float:
+    return default if fixed is None else fixed
+
+
+def _gig_variance(squares: np.ndarray, counts: np.ndarray, prior: float,
+                  rng: np.random.Generator) -> np.ndarray:
+    """Draw variances v with HalfNormal(prior) on sqrt(v) and n Gaussian terms of sum S.
+
+    The conditional density ∝ v^(p-1)·exp(-(a·v + b/v)/2) with p = (1 - n)/2,
+    a = 1/prior², b = S is GIG(p, a, b); v = sqrt(b/a)·Y with Y drawn from
+    scipy.stats.geninvgauss(p, sqrt(a·b)).
+    """
+    a = 1.0 / prior**2
+    b = np.maximum(np.asarray(squares, dtype="float64"), _TINY)
+    p = 0.5 * (1.0 - np.asarray(counts, dtype="float64"))
+    y = geninvgauss.rvs(p, np.sqrt(a * b), random_state=rng)
+    return np.sqrt(b / a) * np.atleast_1d(y)
+
+
+def _draw_dense(precision: np.ndarray, rhs: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    """Batched exact draws x ~ N(P⁻¹b, P⁻¹), precision (B, d, d), rhs (B, d)."""
+    chol = np.linalg.cholesky(precision)
+    mean = np.linalg.solve(precision, rhs[..., None])[..., 0]
+    shock = rng.standard_normal(rhs.shape)[..., None]
+    # x = mean + L⁻ᵀz has covariance (L·Lᵀ)⁻¹.
+    return mean + np.linalg.solve(np.swapaxes(chol, -1, -2), shock)[..., 0]
+
+
+def _levinson(pacf: np.ndarray) -> tuple[list[np.ndarray], list[float]]:
+    """Durbin-Levinson (as gapband.model._levinson, for one process in numpy).
+
+    Returns the AR coefficients of each order 1..p and the innovation
+    variances of the unit-variance process.
+    """
+    phis, variances = [], []
+    previous = np.zeros(0)
+    variance = 1.0
+    for kappa in pacf:
+        current = np.r_[previous - kappa * previous[::-1], kappa]
+        variance *= 1.0 - kappa**2
+        phis.append(current)
+        variances.append(variance)
+        previous = current
+    return phis, variances
+
+
+def _step_down(phi: np.ndarray) -> np.ndarray:
+    """Inverse Durbin-Levinson: AR coefficients → partial autocorrelations."""
+    pacf = np.empty(phi.size)
+    current = np.asarray(phi, dtype="float64")
+    for m in range(phi.size, 0, -1):
+        kappa = current[-1]
+        pacf[m - 1] = kappa
+        if abs(kappa) >= 1.0:
+            pacf[:m] = kappa  # non-stationary: flag and stop
+            return pacf
+        previous = current[:-1]
+        current = (previous + kappa * previous[::-1]) / (1.0 - kappa**2)
+    return pacf
+
+
+def _log_jacobian(pacf: np.ndarray) -> float:
+    """Log |det ∂φ/∂κ| of the Durbin-Levinson map.
+
+    Step m maps (φ⁽ᵐ⁻¹⁾, κ_m) to φ⁽ᵐ⁾ = ((I - κ_m·J)φ⁽ᵐ⁻¹⁾, κ_m) with J the
+    exchange matrix of size m - 1, whose eigenvalues are +1 (⌈(m-1)/2⌉ times)
+    and -1 (⌊(m-1)/2⌋ times); the map is block triangular, so its determinant
+    is (1 - κ_m)^⌈(m-1)/2⌉·(1 + κ_m)^⌊(m-1)/2⌋.
+    """
+    total = 0.0
+    for m, kappa in enumerate(pacf, start=1):
+        total += (m // 2) * np.log1p(-kappa) + ((m - 1) // 2) * np.log1p(kappa)
+    return float(total)
+
+
+def _ar_rows(pacf: np.ndarray, n_time: int) -> tuple[np.ndarray, np.ndarray]:
+    """Prediction-error rows of a stationary unit-variance AR(p) path.
+
+    Returns ``coefs`` (T, p + 1) with ``e_t = Σ_i coefs[t, i]·x[t - i]`` and
+    ``variances`` (T,) of e_t: the first values use the lower-order
+    coefficients (the exact decomposition the PyMC model uses), so the path's
+    density is ∏ N(e_t; 0, variances[t]) and its precision Σ_t a_t·a_tᵀ/v_t.
+    """
+    p = pacf.size
+    phis, innovations = _levinson(pacf)
+    coefs = np.zeros((n_time, p + 1))
+    coefs[:, 0] = 1.0
+    variances = np.empty(n_time)
+    variances[0] = 1.0
+    for m in range(1, p):
+        coefs[m, 1 : m + 1] = -phis[m - 1]
+        variances[m] = innovations[m - 1]
+    coefs[p:, 1:] = -phis[-1]
+    variances[p:] = innovations[-1]
+    return coefs, np.maximum(variances, _TINY)
+
+
+def _ar_loglik(x: np.ndarray, pacf: np.ndarray) -> float:
+    """Exact log density of a stationary unit-variance AR(p) path x (T,)."""
+    coefs, variances = _ar_rows(pacf, x.size)
+    p = pacf.size
+    errors = coefs[:, 0] * x
+    for i in range(1, p + 1):
+        errors[i:] += coefs[i:, i] * x[:-i]
+    return float(-0.5 * (np.log(2.0 * np.pi * variances) + errors**2 / variances).sum())

@@ -1,0 +1,354 @@
+"""The exact block-Gibbs sampler: each block against a closed form, the whole against
+the Kalman smoother and NUTS, seeds and the fill path."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import integrate, stats
+from statsmodels.tsa.statespace.structural import UnobservedComponents
+
+from gapband import filling, gibbs, inference, predict, spec
+from gapband.errors import UsageError
+from gapband.gmrf import draw_banded, draw_bordered
+from gapband.panel import make_panel
+
+
+def _panel(values: np.ndarray, step: str = "h"):
+    n_series, n_time = values.shape
+    time = pd.date_range("2024-01-01", periods=n_time, freq=step)
+    return make_panel(values, [f"s{i}" for i in range(n_series)], time, step)
+
+
+def _simulated(seed=0, n_series=4, n_time=150, share=0.15):
+    """A shared smooth factor with a daily cycle, a shared AR(1) factor and noise."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(n_time)
+    common = np.cumsum(rng.normal(0, 0.15, n_time)) + np.sin(2 * np.pi * t / 24)
+    ar = np.zeros(n_time)
+    for i in range(1, n_time):
+        ar[i] = 0.7 * ar[i - 1] + rng.normal(0, 0.5)
+    truth = np.array([(1 + 0.5 * i) * common + (1 - 0.3 * i) * ar + rng.normal(0, 0.3, n_time)
+                      for i in range(n_series)])
+    hidden = rng.random(truth.shape) < share
+    return _panel(np.where(hidden, np.nan, truth)), truth, hidden
+
+
+SIMPLE = {"rank": 1, "seasonal": [{"period": 24, "harmonics": 1}], "ar_factors": 1,
+          "ar_order": 1, "own_ar": False}
+
+
+def _assert_cov_close(draws: np.ndarray, cov: np.ndarray) -> None:
+    """Sample covariance within 4 standard errors, se² = (c_ii·c_jj + c_ij²)/n (Wishart)."""
+    sd = np.sqrt(np.diag(cov))
+    se = np.sqrt((np.outer(sd, sd) ** 2 + cov**2) / draws.shape[0])
+    np.testing.assert_array_less(np.abs(np.cov(draws.T) - cov), 4 * se + 1e-12)
+
+
+def _dense(ab: np.ndarray) -> np.ndarray:
+    n = ab.shape[1]
+    q = np.zeros((n, n))
+    for i in range(ab.shape[0]):
+        q += np.diag(ab[i, : n - i], -i)
+        if i:
+            q += np.diag(ab[i, : n - i], i)
+    return q
+
+
+def test_banded_and_bordered_draws_match_the_dense_gaussian():
+    # Source: a Gaussian in canonical form with precision P and linear term b
+    # is N(P⁻¹b, P⁻¹) (Rue & Held, Gaussian Markov Random Fields, 2005,
+    # section 2.1); computed densely with numpy.linalg.
+    rng = np.random.default_rng(1)
+    n, bandwidth, m = 10, 2, 2
+    ab = np.zeros((bandwidth + 1, n))
+    ab[0] = 3.0 + rng.random(n)
+    ab[1, :-1] = -0.8 + 0.2 * rng.random(n - 1)
+    ab[2, :-2] = 0.3 * rng.random(n - 2)
+    rhs = rng.normal(size=n)
+    border = 0.3 * rng.normal(size=(n, m))
+    corner = np.array([[2.0, 0.3], [0.3, 1.5]])
+    corner_rhs = rng.normal(size=m)
+    joint = np.block([[_dense(ab), border], [border.T, corner]])
+    cov = np.linalg.inv(joint)
+    mean = cov @ np.r_[rhs, corner_rhs]
+
+    draws = 20_000
+    banded = np.array([draw_banded(ab, rhs, rng) for _ in range(draws)])
+    banded_cov = np.linalg.inv(_dense(ab))
+    np.testing.assert_array_less(np.abs(banded.mean(axis=0) - banded_cov @ rhs),
+                                 5 * np.sqrt(np.diag(banded_cov) / draws))
+    _assert_cov_close(banded, banded_cov)
+
+    bordered = np.array([np.r_[draw_bordered(ab, rhs, border, corner, corner_rhs, rng)]
+                         for _ in range(draws)])
+    np.testing.assert_array_less(np.abs(bordered.mean(axis=0) - mean),
+                                 5 * np.sqrt(np.diag(cov) / draws))
+    _assert_cov_close(bordered, cov)
+
+
+def _sampler(z, spec_dict, rank=1, ar_factors=0, fourier=None, seed=0):
+    model_spec = spec.parse(spec_dict)
+    fourier = np.zeros((z.shape[1], 0)) if fourier is None else fourier
+    return gibbs._Sampler(z, fourier, model_spec, rank, ar_factors,
+                          np.random.default_rng(seed)), model_spec
+
+
+@pytest.mark.parametrize("own_ar", [False, True])
+def test_loading_draws_match_the_conjugate_regression(own_ar):
+    # Source: Bayesian linear regression with known error covariance K and a
+    # N(0, s²I) prior has posterior N(V·XᵀK⁻¹y, V), V = (XᵀK⁻¹X + I/s²)⁻¹
+    # (Gelman et al., Bayesian Data Analysis, 3rd ed., 2013, section 14.2,
+    # with K = σ²I; the general K is the generalised least-squares form of
+    # the same section). With an own AR(1) path integrated out,
+    # K = own_sd²·ρ^|i-j| + σ²I on the observed cells; computed densely.
+    rng = np.random.default_rng(2)
+    n_time, sd, rho, noise, prior = 40, 0.6, 0.7, 0.4, 0.8
+    z = rng.normal(size=(2, n_time))
+    z[0, 5:9] = np.nan
+    sampler, _ = _sampler(z, {"rank": 1, "seasonal": [], "ar_factors": 1, "own_ar": own_ar,
+                              "priors": {"loading": prior}}, rank=1, ar_factors=1)
+    state = sampler.initial()
+    state.trend = np.cumsum(rng.normal(size=(1, n_time)), axis=1) * 0.3
+    state.ar = rng.normal(size=(1, n_time))
+    state.noise = np.full(2, noise)
+    state.own_sd, state.own_rho = np.full(2, sd), np.full(2, rho)
+    design = np.vstack([state.trend, state.ar]).T
+    draws = np.array([(sampler._loadings(state), np.c_[state.loading, state.short_loading])[1]
+                      for _ in range(20_000)])
+
+    lags = np.abs(np.subtract.outer(np.arange(n_time), np.arange(n_time)))
+    for n in range(2):
+        seen = ~np.isnan(z[n])
+        k = noise**2 * np.eye(n_time) + (sd**2 * rho**lags if own_ar else 0.0)
+        k_inv = np.linalg.inv(k[np.ix_(seen, seen)])
+        x = design[seen]
+        v = np.linalg.inv(x.T @ k_inv @ x + np.eye(2) / prior**2)
+        mean = v @ x.T @ k_inv @ z[n, seen]
+        np.testing.assert_array_less(np.abs(draws[:, n].mean(axis=0) - mean),
+                                     5 * np.sqrt(np.diag(v) / draws.shape[0]))
+        _assert_cov_close(draws[:, n], v)
+
+
+def test_own_marginal_matches_the_dense_normal_density():
+    # Source: an AR(1) path with autocovariance sd²·ρ^|i-j| plus independent
+    # noise is Gaussian with that covariance plus σ²I on the observed cells
+    # (scipy.stats.multivariate_normal.logpdf, computed densely).
+    rng = np.random.default_rng(3)
+    n_time = 30
+    resid = rng.normal(size=(2, n_time))
+    base = np.ones((2, n_time))
+    base[1, [3, 4, 17]] = 0.0
+    sd, rho, noise = np.array([0.9, 0.4]), np.array([0.8, 0.3]), np.array([0.5, 0.2])
+    got = gibbs._own_marginal(resid, base, sd, rho, noise)
+    lags = np.abs(np.subtract.outer(np.arange(n_time), np.arange(n_time)))
+    for n in range(2):
+        seen = base[n] > 0
+        cov = (sd[n] ** 2 * rho[n] ** lags + noise[n] ** 2 * np.eye(n_time))[np.ix_(seen, seen)]
+        expected = stats.multivariate_normal(np.zeros(seen.sum()), cov).logpdf(resid[n, seen])
+        assert got[n] == pytest.approx(expected, rel=1e-9)
+
+
+def test_ar_pieces_match_yule_walker_and_a_numeric_jacobian():
+    # Source: a stationary AR(2) with unit variance has autocorrelations
+    # ρ1 = φ1/(1 - φ2), ρk = φ1·ρ(k-1) + φ2·ρ(k-2) (Yule-Walker equations;
+    # Brockwell & Davis, 2002, section 3.3, from memory); the exact density of
+    # a path is then the dense normal density with that Toeplitz covariance.
+    pacf = np.array([0.6, -0.3])
+    phi = gibbs._levinson(pacf)[0][-1]
+    n_time = 25
+    acf = np.empty(n_time)
+    acf[0], acf[1] = 1.0, phi[0] / (1 - phi[1])
+    for k in range(2, n_time):
+        acf[k] = phi[0] * acf[k - 1] + phi[1] * acf[k - 2]
+    lags = np.abs(np.subtract.outer(np.arange(n_time), np.arange(n_time)))
+    x = np.random.default_rng(4).normal(size=n_time)
+    dense = stats.multivariate_normal(np.zeros(n_time), acf[lags]).logpdf(x)
+    assert gibbs._ar_loglik(x, pacf) == pytest.approx(dense, rel=1e-9)
+    np.testing.assert_allclose(gibbs._step_down(phi), pacf, atol=1e-12)
+
+    # The Jacobian of partial autocorrelations → coefficients, by central differences.
+    pacf3 = np.array([0.5, -0.4, 0.3])
+    step = 1e-6
+    columns = [(gibbs._levinson(pacf3 + step * e)[0][-1]
+                - gibbs._levinson(pacf3 - step * e)[0][-1]) / (2 * step) for e in np.eye(3)]
+    numeric = np.log(abs(np.linalg.det(np.column_stack(columns))))
+    assert gibbs._log_jacobian(pacf3) == pytest.approx(numeric, abs=1e-7)
+
+
+def test_variance_draws_follow_the_gig_conditional():
+    # Source: with sd ~ HalfNormal(c) and n Gaussian terms of sum of squares S,
+    # p(v | ·) ∝ v^(-(n+1)/2)·exp(-S/(2v) - v/(2c²)); its mean by numerical
+    # integration (scipy.integrate.quad) against the sample mean of the draws.
+    rng = np.random.default_rng(5)
+    squares, count, prior = 7.0, 12, 0.5
+    draws = gibbs._gig_variance(np.full(10_000, squares), np.full(10_000, count), prior, rng)
+
+    def density(v):
+        return v ** (-(count + 1) / 2) * np.exp(-squares / (2 * v) - v / (2 * prior**2))
+
+    norm = integrate.quad(density, 0, np.inf)[0]
+    mean = integrate.quad(lambda v: v * density(v), 0, np.inf)[0] / norm
+    assert draws.mean() == pytest.approx(mean, rel=0.02)  # about 4 standard errors
+
+
+def _local_level_case():
+    rng = np.random.default_rng(7)
+    n_time, q, sigma, level_sd = 80, 0.3, 0.5, 5.0
+    level = np.cumsum(np.r_[rng.normal(0, 2), rng.normal(0, q, n_time - 1)])
+    y = level + rng.normal(0, sigma, n_time)
+    y[20:30] = np.nan
+    y[55:60] = np.nan
+    y[rng.choice(n_time, 6, replace=False)] = np.nan
+    return y, q, sigma, level_sd
+
+
+def test_local_level_matches_the_kalman_smoother():
+    # Source: for a random-walk level plus Gaussian noise with known variances
+    # the exact posterior of the missing cells is the Kalman smoother's
+    # (local level model; Durbin & Koopman, Time Series Analysis by State
+    # Space Methods, 2nd ed., 2012, ch. 2 - chapter from memory), computed by
+    # statsmodels UnobservedComponents("llevel") with the same fixed variances
+    # and known initial state N(0, level_sd²). The same case as the NUTS check
+    # in test_inference.py.
+    y, q, sigma, level_sd = _local_level_case()
+    local_level = spec.parse({
+        "rank": 1, "seasonal": [], "ar_factors": 0, "own_ar": False, "standardise": False,
+        "priors": {"level": level_sd},
+        "fixed": {"loading": 1.0, "trend_innovation": q, "noise": sigma},
+    })
+    panel = _panel(y[None, :], step="D")
+    fitted = inference.fit(panel, local_level, method="gibbs", draws=2000, tune=50,
+                           chains=2, seed=3)
+    assert fitted.method == "gibbs" and not fitted.approximate
+    assert fitted.diagnostics["converged"], fitted.diagnostics
+    filled = predict.summarise(fitted, panel, seed=1)
+
+    reference = UnobservedComponents(y, "llevel")
+    reference.initialize_known(np.array([0.0]), np.array([[level_sd**2]]))
+    smoothed = reference.smooth([sigma**2, q**2])
+    missing = np.isnan(y)
+    mean = smoothed.smoothed_state[0][missing]
+    sd = np.sqrt(smoothed.smoothed_state_cov[0, 0][missing] + sigma**2)
+
+    # Every sweep is an exact independent draw of the path here (nothing else
+    # is sampled), so the ESS is the number of draws (4,000): the error of a
+    # mean is under sd/60 and of an sd about 1.1 %; allow 4 standard errors.
+    ess = fitted.diagnostics["ess_bulk_min"]
+    assert ess > 2500
+    np.testing.assert_array_less(np.abs(filled["fill_mean"].values[0][missing] - mean),
+                                 4 * sd / np.sqrt(ess))
+    np.testing.assert_allclose(filled["fill_sd"].values[0][missing], sd, rtol=0.05)
+
+
+def test_same_seed_same_draws_names_match_the_pymc_model():
+    panel, _, _ = _simulated(n_time=80)
+    small = spec.parse(SIMPLE | {"own_ar": True, "ar_order": 2})
+    first = inference.fit(panel, small, method="gibbs", draws=30, tune=10, seed=4)
+    again = inference.fit(panel, small, method="gibbs", draws=30, tune=10, seed=4)
+    other = inference.fit(panel, small, method="gibbs", draws=30, tune=10, seed=5)
+    assert first.posterior.equals(again.posterior)
+    assert not np.array_equal(first.posterior["trend"].values, other.posterior["trend"].values)
+    names = {v.name for v in first.built.model.free_RVs + first.built.model.deterministics}
+    assert set(first.posterior.data_vars) == names - {"trend_steps"}
+    for name in first.posterior.data_vars:  # same dims as the PyMC model declares
+        assert first.posterior[name].dims[2:] == tuple(first.built.model.named_vars_to_dims
+                                                       .get(name, ())), name
+    assert {"build", "tune", "sample", "diagnostics"} <= set(first.timings)
+    assert first.diagnostics["divergences"] == 0
+    assert first.diagnostics["n_draws"] == 60
+
+
+def test_student_t_noise_runs_and_weights_observed_cells():
+    panel, truth, hidden = _simulated(seed=2, n_time=80)
+    robust = spec.parse(SIMPLE | {"noise": "student_t", "noise_df": 4.0, "own_ar": True})
+    fitted = inference.fit(panel, robust, method="gibbs", draws=40, tune=20, seed=1)
+    filled = predict.summarise(fitted, panel, levels=(90,))
+    assert np.isfinite(filled["fill_mean"].values[hidden]).all()
+
+
+def test_fill_with_gibbs_leaves_observed_cells_unchanged():
+    panel, truth, hidden = _simulated(seed=3, n_time=96)
+    options = filling.FillOptions(method="gibbs", draws=60, tune=30, seed=2, progress=False)
+    result, summary = filling.fill(panel, model=spec.parse(SIMPLE), options=options)
+    observed = ~hidden
+    np.testing.assert_array_equal(result["filled"].values[observed], truth[observed])
+    assert np.isfinite(result["filled"].values[hidden]).all()
+    assert summary["method"] == "gibbs" and not summary["approximate"]
+    again, _ = filling.fill(panel, model=spec.parse(SIMPLE), options=options)
+    np.testing.assert_array_equal(result["filled"].values, again["filled"].values)
+
+
+def test_unknown_method_lists_gibbs():
+    panel, _, _ = _simulated(n_time=40)
+    with pytest.raises(UsageError, match=r"use one of 'nuts', 'advi', 'gibbs'"):
+        inference.fit(panel, spec.parse(SIMPLE), method="hmc")
+
+
+@pytest.mark.slow
+def test_gibbs_agrees_with_nuts_on_a_small_panel(record_property):
+    # Source: PyMC NUTS on the same model and priors (gapband.model) is the
+    # reference. Tolerance: the difference of two Monte Carlo means has
+    # standard error sd·sqrt(1/ESS_gibbs + 1/ESS_nuts); allow 4 of them per
+    # cell, and sds within 15 % (sd estimates from a few hundred effective
+    # draws carry about 5 % error each).
+    panel, _, hidden = _simulated(seed=0)
+    simple = spec.parse(SIMPLE)
+    exact = inference.fit(panel, simple, method="nuts", draws=1000, tune=1000, chains=2,
+                          seed=1)
+    fast = inference.fit(panel, simple, method="gibbs", draws=2000, tune=500, chains=2,
+                         seed=1)
+    a = predict.summarise(exact, panel, levels=(90,))
+    b = predict.summarise(fast, panel, levels=(90,))
+    sd = a["fill_sd"].values[hidden]
+    ess = min(exact.diagnostics["ess_bulk_min"], fast.diagnostics["ess_bulk_min"])
+    record_property("ess_min", ess)
+    tolerance = 4 * sd * np.sqrt(2 / ess)
+    np.testing.assert_array_less(np.abs(a["fill_mean"].values[hidden]
+                                        - b["fill_mean"].values[hidden]), tolerance)
+    np.testing.assert_allclose(b["fill_sd"].values[hidden], sd, rtol=0.15)
+
+
+@pytest.mark.slow
+def test_gibbs_intervals_cover_at_the_nominal_rate_on_prior_draws(record_property):
+    # Source: for data drawn from the model's own prior, posterior predictive
+    # intervals cover at their nominal rate on average (Cook, Gelman & Rubin,
+    # "Validation of software for Bayesian models using posterior quantiles",
+    # JCGS 2006; citation from memory). The same prior, data sets and
+    # 3-binomial-sd tolerance as the NUTS check in test_inference.py.
+    calibration = spec.parse({
+        "rank": 1, "seasonal": [{"period": 7, "harmonics": 1}], "ar_factors": 0,
+        "own_ar": False, "standardise": False,
+        "priors": {"loading": 1.0, "level": 1.0, "trend_innovation": 0.1, "seasonal": 0.5,
+                   "noise": 0.5},
+    })
+    prior = calibration.priors
+    hits = {50: [], 90: []}
+    for seed in range(3):
+        rng = np.random.default_rng(seed)
+        n_series, n_time = 3, 120
+        loading = rng.normal(0, prior.loading, n_series)
+        step_sd = abs(rng.normal(0, prior.trend_innovation))
+        trend = rng.normal(0, prior.level) + np.r_[0, np.cumsum(
+            step_sd * rng.normal(size=n_time - 1))]
+        angle = 2 * np.pi * np.arange(n_time) / 7
+        a, b = rng.normal(0, prior.seasonal, 2)
+        noise = np.abs(rng.normal(0, prior.noise, n_series))
+        truth = (loading[:, None] * (trend + a * np.cos(angle) + b * np.sin(angle))
+                 + noise[:, None] * rng.normal(size=(n_series, n_time)))
+        hidden = rng.random((n_series, n_time)) < 0.3
+        panel = _panel(np.where(hidden, np.nan, truth), step="D")
+        fitted = inference.fit(panel, calibration, method="gibbs", draws=1000, tune=1000,
+                               chains=2, seed=seed)
+        filled = predict.summarise(fitted, panel, levels=(50, 90))
+        for level, found in hits.items():
+            lower = filled[f"lower_{level}"].values[hidden]
+            upper = filled[f"upper_{level}"].values[hidden]
+            found.extend((lower <= truth[hidden]) & (truth[hidden] <= upper))
+    for level, found in hits.items():
+        found = np.array(found)
+        nominal = level / 100
+        tolerance = 3 * np.sqrt(nominal * (1 - nominal) / found.size)
+        record_property(f"gibbs_coverage_{level}", float(found.mean()))
+        assert abs(found.mean() - nominal) < tolerance, (level, found.mean(), found.size)
