@@ -121,14 +121,14 @@ def test_flags_follow_the_rules(filled_dir, station_csv):
 def test_summary_reports_counts_capture_and_provenance(filled_dir, station_csv):
     path, values = station_csv
     summary = json.loads((filled_dir / "summary.json").read_text(encoding="utf-8"))
-    assert summary["method"] == "advi" and summary["approximate"] is True
+    assert summary["method"] == "gibbs" and summary["approximate"] is False
     assert summary["seed"] == 7
     assert summary["flags"]["overall"]["observed"] == int(np.isfinite(values).sum())
     assert summary["flags"]["series"]["lone"]["not_filled"] == 95
     assert summary["capture"]["measured"]["north"] == pytest.approx(100 * 86 / 96, abs=0.01)
     assert summary["capture"]["with_fills"]["north"] == 100.0
     assert summary["input_sha256"] == hashlib.sha256(path.read_bytes()).hexdigest()
-    assert summary["diagnostics"]["n_draws"] == 200
+    assert summary["diagnostics"]["n_draws"] == 2 * 200  # two chains
     with xr.open_dataset(filled_dir / "filled.nc") as ds:
         assert ds.attrs["gapband_seed"] == 7
         assert json.loads(ds.attrs["gapband_spec"])["rank"] == 1

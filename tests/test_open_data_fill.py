@@ -49,7 +49,7 @@ def hidden_fill(weather_panel):
     hidden = np.sort(rng.choice(observed, int(0.2 * observed.size), replace=False))
     values.ravel()[hidden] = np.nan
     gapped = weather_panel.copy(data={"value": values})
-    options = filling.FillOptions(method="gibbs", draws=300, tune=300, seed=0, progress=False)
+    options = filling.FillOptions(method="gibbs", draws=200, tune=200, seed=0, progress=False)
     result, summary = filling.fill(gapped, options=options)
     return weather_panel["value"].values.ravel()[hidden], hidden, gapped, result, summary
 

@@ -127,10 +127,10 @@ def parse_levels(ctx, param, text: str) -> tuple[float, ...]:
 @click.option("--transform", type=click.Choice(["none", "log", "log1p"]),
               help="Override the spec's transform; 'log' keeps fills of positive, skewed "
               "quantities positive.")
-@click.option("--method", type=click.Choice(["advi", "nuts", "gibbs"]), default="advi",
+@click.option("--method", type=click.Choice(["gibbs", "advi", "nuts"]), default="gibbs",
               show_default=True,
-              help="advi: fast, approximate (check with holdout); nuts: exact, slow; "
-              "gibbs: exact block-Gibbs, fast.")
+              help="gibbs: exact block-Gibbs sampler; advi: fast, approximate (check with "
+              "holdout); nuts: exact, slow.")
 @click.option("--draws", type=click.IntRange(10), default=1000, show_default=True,
               help="Posterior draws (per chain for nuts).")
 @click.option("--tune", type=click.IntRange(0), default=1000, show_default=True,
@@ -208,8 +208,8 @@ def capture_table(figures: dict) -> Table:
     """The inspect figures as a terminal table."""
     threshold = figures["capture_threshold"]
     table = Table(
-        title=f"{escape(str(figures['source']))}: {_short(figures['start'])} to {_short(figures['end'])}, "
-        f"step {figures['step']}",
+        title=f"{escape(str(figures['source']))}: {_short(figures['start'])} to "
+        f"{_short(figures['end'])}, step {figures['step']}",
         caption=f"capture threshold {threshold:g} %; gaps by length in steps: "
         "1 | 2-6 | 7-24 | 25-168 | >168",
     )

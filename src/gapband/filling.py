@@ -48,7 +48,7 @@ class FlagRules:
 class FillOptions:
     """Settings of one fill run."""
 
-    method: Method = "advi"
+    method: Method = "gibbs"
     draws: int = 1000
     tune: int = 1000
     chains: int = 2
@@ -168,7 +168,8 @@ def fill(
     )
     fit_seconds = time.perf_counter() - started
     log.info("fit done in %.1f s; summarising the posterior predictive", fit_seconds)
-    summaries = predict.summarise(fitted, fit_panel, levels=levels, seed=options.seed)
+    summaries = predict.summarise(fitted, fit_panel, levels=levels, seed=options.seed,
+                                  progress=options.progress)
     predict_seconds = time.perf_counter() - started - fit_seconds
 
     result = panel.merge(summaries.drop_vars("value"), join="left")

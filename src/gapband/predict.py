@@ -14,6 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import xarray as xr
+from rich.progress import track
 
 from gapband.errors import UsageError
 from gapband.gmrf import draw_ar1_given_noisy
@@ -30,6 +31,7 @@ def summarise(
     levels: Sequence[float] = DEFAULT_LEVELS,
     seed: int = 0,
     chunk_cells: int = 4096,
+    progress: bool = False,
 ) -> xr.Dataset:
     """Summarise the posterior predictive distribution of every missing cell.
 
@@ -43,6 +45,8 @@ def summarise(
         Central interval levels in percent, each in (0, 100).
     seed : int
         Seed of the noise draws; the same seed gives the same summaries.
+    progress : bool
+        Show a progress bar (with time remaining) over the chunks.
     chunk_cells : int
         Missing cells summarised at a time. Each working array holds
         ``draws × chunk_cells × 8`` bytes (draws = chains × draws per chain;
@@ -76,7 +80,8 @@ def summarise(
         f"{side}_{_label(level)}" for level in levels for side in ("lower", "upper")
     ]
     out = {name: np.full(n_series * n_time, np.nan) for name in names}
-    for begin in range(0, missing.size, chunk_cells):
+    chunks = range(0, missing.size, chunk_cells)
+    for begin in track(chunks, description="predictive", disable=not progress, transient=True):
         cells = missing[begin : begin + chunk_cells]
         values = predictive.draws(cells)
         out["fill_mean"][cells] = values.mean(axis=0)
