@@ -7,7 +7,6 @@ import numpy as np
 import pandas as pd
 import pytest
 from scipy import integrate, stats
-from statsmodels.tsa.statespace.structural import UnobservedComponents
 
 from gapband import filling, gibbs, inference, predict, spec
 from gapband.errors import UsageError
@@ -191,55 +190,6 @@ def test_variance_draws_follow_the_gig_conditional():
     norm = integrate.quad(density, 0, np.inf)[0]
     mean = integrate.quad(lambda v: v * density(v), 0, np.inf)[0] / norm
     assert draws.mean() == pytest.approx(mean, rel=0.02)  # about 4 standard errors
-
-
-def _local_level_case():
-    rng = np.random.default_rng(7)
-    n_time, q, sigma, level_sd = 80, 0.3, 0.5, 5.0
-    level = np.cumsum(np.r_[rng.normal(0, 2), rng.normal(0, q, n_time - 1)])
-    y = level + rng.normal(0, sigma, n_time)
-    y[20:30] = np.nan
-    y[55:60] = np.nan
-    y[rng.choice(n_time, 6, replace=False)] = np.nan
-    return y, q, sigma, level_sd
-
-
-def test_local_level_matches_the_kalman_smoother():
-    # Source: for a random-walk level plus Gaussian noise with known variances
-    # the exact posterior of the missing cells is the Kalman smoother's
-    # (local level model; Durbin & Koopman, Time Series Analysis by State
-    # Space Methods, 2nd ed., 2012, ch. 2 - chapter from memory), computed by
-    # statsmodels UnobservedComponents("llevel") with the same fixed variances
-    # and known initial state N(0, level_sd²). The same case as the NUTS check
-    # in test_inference.py.
-    y, q, sigma, level_sd = _local_level_case()
-    local_level = spec.parse({
-        "rank": 1, "seasonal": [], "ar_factors": 0, "own_ar": False, "standardise": False,
-        "priors": {"level": level_sd},
-        "fixed": {"loading": 1.0, "trend_innovation": q, "noise": sigma},
-    })
-    panel = _panel(y[None, :], step="D")
-    fitted = inference.fit(panel, local_level, method="gibbs", draws=2000, tune=50,
-                           chains=2, seed=3)
-    assert fitted.method == "gibbs" and not fitted.approximate
-    assert fitted.diagnostics["converged"], fitted.diagnostics
-    filled = predict.summarise(fitted, panel, seed=1)
-
-    reference = UnobservedComponents(y, "llevel")
-    reference.initialize_known(np.array([0.0]), np.array([[level_sd**2]]))
-    smoothed = reference.smooth([sigma**2, q**2])
-    missing = np.isnan(y)
-    mean = smoothed.smoothed_state[0][missing]
-    sd = np.sqrt(smoothed.smoothed_state_cov[0, 0][missing] + sigma**2)
-
-    # Every sweep is an exact independent draw of the path here (nothing else
-    # is sampled), so the ESS is the number of draws (4,000): the error of a
-    # mean is under sd/60 and of an sd about 1.1 %; allow 4 standard errors.
-    ess = fitted.diagnostics["ess_bulk_min"]
-    assert ess > 2500
-    np.testing.assert_array_less(np.abs(filled["fill_mean"].values[0][missing] - mean),
-                                 4 * sd / np.sqrt(ess))
-    np.testing.assert_allclose(filled["fill_sd"].values[0][missing], sd, rtol=0.05)
 
 
 def test_same_seed_same_draws_names_match_the_pymc_model():
