@@ -204,18 +204,19 @@ def _coverage(method, calibration):
 
 
 @pytest.mark.slow
-def test_nuts_intervals_cover_at_the_nominal_rate_on_prior_draws(record_property):
+@pytest.mark.parametrize("method", ["nuts", "gibbs"])
+def test_exact_methods_cover_at_the_nominal_rate_on_prior_draws(method, record_property):
     # Source: for data drawn from the model's own prior, posterior predictive
     # intervals cover at their nominal rate on average (Cook, Gelman & Rubin,
     # "Validation of software for Bayesian models using posterior quantiles",
     # JCGS 2006; citation from memory). Tolerance: 3 binomial sds for the pooled
     # missing cells of three data sets.
     calibration = spec.parse(CALIBRATION)
-    hits = _coverage("nuts", calibration)
+    hits = _coverage(method, calibration)
     for level, found in hits.items():
         nominal = level / 100
         tolerance = 3 * np.sqrt(nominal * (1 - nominal) / found.size)
-        record_property(f"nuts_coverage_{level}", float(found.mean()))
+        record_property(f"{method}_coverage_{level}", float(found.mean()))
         assert abs(found.mean() - nominal) < tolerance, (level, found.mean(), found.size)
 
 
