@@ -46,12 +46,19 @@ of the number of series when ``own_ar`` is on.
 
 from __future__ import annotations
 
-import sys
 import time
 from dataclasses import dataclass
 
 import numpy as np
 import xarray as xr
+from rich.console import Console
+from rich.progress import (
+    BarColumn,
+    MofNCompleteColumn,
+    Progress,
+    TextColumn,
+    TimeRemainingColumn,
+)
 from scipy.linalg import cho_solve_banded, cholesky_banded
 from scipy.stats import geninvgauss
 
@@ -500,7 +507,7 @@ def sample(
         Each chain's generator is spawned from ``numpy.random.SeedSequence(seed)``;
         the same seed gives the same draws.
     progress : bool
-        Print a line to stderr every tenth of the sweeps.
+        Show a progress bar (sweeps done, time remaining) on stderr.
 
     Returns
     -------
@@ -520,28 +527,30 @@ def sample(
     accepted: dict[str, int] = {}
     proposed: dict[str, int] = {}
     timings = {"tune": 0.0, "sample": 0.0}
-    total = chains * (tune + draws)
-    every = max(1, total // 10)
-    done = 0
-    for chain, stream in enumerate(streams):
-        sampler = _Sampler(z, fourier, spec, rank, ar_factors, np.random.default_rng(stream))
-        state = sampler.initial()
-        store = _Store(draws, z.shape, rank, ar_factors, fourier.shape[1], spec)
-        for phase, sweeps in (("tune", tune), ("sample", draws)):
-            start = time.perf_counter()
-            for i in range(sweeps):
-                sampler.sweep(state, tuning=phase == "tune")
-                if phase == "sample":
-                    store.keep(i, state)
-                done += 1
-                if progress and done % every == 0:
-                    print(f"gibbs: chain {chain + 1}/{chains}, {done}/{total} sweeps",
-                          file=sys.stderr, flush=True)
-            timings[phase] += time.perf_counter() - start
-        kept.append(store.arrays)
-        for name in sampler.accepted:
-            accepted[name] = accepted.get(name, 0) + sampler.accepted[name]
-            proposed[name] = proposed.get(name, 0) + sampler.proposed[name]
+    bar = Progress(
+        TextColumn("gibbs chain {task.fields[chain]}/" + str(chains)), BarColumn(),
+        MofNCompleteColumn(), TimeRemainingColumn(),
+        console=Console(stderr=True), disable=not progress, transient=True,
+    )
+    task = bar.add_task("sweeps", total=chains * (tune + draws), chain=1)
+    with bar:
+        for chain, stream in enumerate(streams):
+            bar.update(task, chain=chain + 1)
+            sampler = _Sampler(z, fourier, spec, rank, ar_factors, np.random.default_rng(stream))
+            state = sampler.initial()
+            store = _Store(draws, z.shape, rank, ar_factors, fourier.shape[1], spec)
+            for phase, sweeps in (("tune", tune), ("sample", draws)):
+                start = time.perf_counter()
+                for i in range(sweeps):
+                    sampler.sweep(state, tuning=phase == "tune")
+                    if phase == "sample":
+                        store.keep(i, state)
+                    bar.advance(task)
+                timings[phase] += time.perf_counter() - start
+            kept.append(store.arrays)
+            for name in sampler.accepted:
+                accepted[name] = accepted.get(name, 0) + sampler.accepted[name]
+                proposed[name] = proposed.get(name, 0) + sampler.proposed[name]
     posterior = _dataset(kept, coords, rank, ar_factors, fourier.shape[1], spec)
     acceptance = {name: accepted[name] / proposed[name] for name in accepted if proposed[name]}
     diagnostics = {"sampler": "gibbs", "divergences": 0, "acceptance": acceptance}
