@@ -392,12 +392,15 @@ def inspect(panel: xr.Dataset, capture_threshold: float = 90.0) -> dict:
     times = pd.DatetimeIndex(panel["time"].values)
     step = step_of(panel)
     runs = gap_runs(missing)
-    rows = []
-    for i, name in enumerate(panel["series"].values):
-        lengths = np.array([n for s, _, n in runs if s == i], dtype="int64")
-        rows.append(
-            _series_stats(str(name), ~missing[i], lengths, times, step, capture_threshold)
-        )
+    # One pass over the runs, not one per series: networks have many of both.
+    lengths_of: list[list[int]] = [[] for _ in range(missing.shape[0])]
+    for s, _, length in runs:
+        lengths_of[s].append(length)
+    rows = [
+        _series_stats(str(name), ~missing[i], np.array(lengths_of[i], dtype="int64"), times,
+                      step, capture_threshold)
+        for i, name in enumerate(panel["series"].values)
+    ]
     all_lengths = np.array([n for _, _, n in runs], dtype="int64")
     expected = int(missing.size)
     observed = int((~missing).sum())
