@@ -62,7 +62,7 @@ from rich.progress import (
 from scipy.linalg import cho_solve_banded, cholesky_banded
 from scipy.stats import geninvgauss
 
-from gapband.gmrf import draw_banded, draw_bordered
+from gapband.gmrf import ar1_band, draw_banded, draw_bordered
 from gapband.spec import ModelSpec
 
 #: Floors that keep variances and sums of squares strictly positive.
@@ -249,89 +249,159 @@ class _Sampler:
         return self.seen * s.weight / np.maximum(s.noise, _TINY)[:, None] ** 2
 
     def _paths(self, s: _State) -> None:
-        """Trend, AR and own paths of all factors and series jointly: one banded GMRF.
+        """The shared paths, and the own paths when the spec has them.
 
-        The state at time t is (trend_1..r, ar_1..rb, own_1..N); ordered time
-        first, its precision has lower bandwidth d·(lags + 1) - 1 with d the
-        state size. Drawing the components that add up to each observation
-        together is what keeps the sampler mixing when the noise is small
-        (a path-by-path update can then only move in tiny steps).
+        With own paths, three exact draws in turn: the own paths given the
+        shared ones; the shared paths given the own ones; and the shared
+        paths given the noise, the own paths following as the signal minus
+        the shared part. The second mixes slowly when the noise is small
+        against the own paths, the third when the own innovations are small
+        against the noise; in turn, each covers the other's weak side (the
+        idea of interweaving two data augmentations; Yu & Meng, JCGS 2011).
+        Each is a banded draw over the shared state only, so a sweep costs
+        O(N·T) in the number of series, not O(N²·T).
+        """
+        if self.spec.own_ar:
+            self._own_paths(s)
+        self._shared_given_own(s)
+        if self.spec.own_ar:
+            self._shared_given_signal(s)
+
+    def _own_paths(self, s: _State) -> None:
+        """Every series' own AR(1) path given the rest: one stacked tridiagonal draw."""
+        weight = self._cell_weight(s)
+        resid = self.z - self._mean(s, own=False)
+        x = draw_banded(ar1_band(s.own_sd, s.own_rho, weight), (weight * resid).ravel(),
+                        self.rng)
+        s.own_path = x.reshape(self.z.shape)
+
+    def _shared_prior(self, s: _State) -> tuple[np.ndarray, int]:
+        """Prior precision of the shared state, lower banded, and the state size d.
+
+        The state at time t is (trend_1..r, ar_1..rb); ordered time first,
+        its precision has lower bandwidth d·(lags + 1) - 1.
         """
         r, rb, p = self.rank, self.ar_factors, self.order
-        n_series, n_time = self.z.shape
-        n_own = n_series if self.spec.own_ar else 0
-        d = r + rb + n_own
+        n_time = self.z.shape[1]
+        d = r + rb
         lags = max(1, p if rb else 1)
-        bandwidth = d * (lags + 1) - 1
-        ab = np.zeros((bandwidth + 1, n_time * d))
+        ab = np.zeros((d * (lags + 1), n_time * d))
         times = np.arange(n_time) * d
-
-        def add(rows, cols, values):
-            ab[rows - cols, cols] += values
-
         level_precision = 1.0 / self.spec.priors.level**2
         for k in range(r):
             step_precision = 1.0 / max(s.innovation[k], np.sqrt(_TINY)) ** 2
             diagonal = np.full(n_time, 2.0 * step_precision)
             diagonal[[0, -1]] = step_precision
             diagonal[0] += level_precision
-            add(times + k, times + k, diagonal)
-            add(times[1:] + k, times[:-1] + k, -step_precision)
+            _add(ab, times + k, times + k, diagonal)
+            _add(ab, times[1:] + k, times[:-1] + k, -step_precision)
         for j in range(rb):
             coefs, variances = _ar_rows(s.pacf[j], n_time)
             k = r + j
             for i in range(p + 1):
                 for m in range(i, p + 1):  # the lower entry Q[t-i, t-m], i <= m
                     t = np.arange(m, n_time)
-                    add(times[t - i] + k, times[t - m] + k,
-                        coefs[t, i] * coefs[t, m] / variances[t])
-        if n_own:
-            own = r + rb + np.arange(n_series)
-            rho = s.own_rho[:, None]
-            innovation = np.maximum(s.own_sd**2 * (1.0 - s.own_rho**2), _TINY)[:, None]
-            diagonal = np.broadcast_to((1.0 + rho**2) / innovation, (n_series, n_time)).copy()
-            diagonal[:, [0, -1]] = 1.0 / innovation
-            add(times[None, :] + own[:, None], times[None, :] + own[:, None], diagonal)
-            add(times[None, 1:] + own[:, None], times[None, :-1] + own[:, None],
-                np.broadcast_to(-rho / innovation, (n_series, n_time - 1)))
+                    _add(ab, times[t - i] + k, times[t - m] + k,
+                         coefs[t, i] * coefs[t, m] / variances[t])
+        return ab, d
 
-        # Data: observation n at time t sees c_n·x_t with c_n = (L_n, B_n, unit_n),
-        # plus (L_n ⊗ F_t)·β for the Fourier coefficients β.
-        shared = np.concatenate([s.loading, s.short_loading], axis=1)  # (N, r + rb)
-        design = np.concatenate([shared, np.eye(n_series)[:, :n_own]], axis=1)  # (N, d)
+    def _shared_given_own(self, s: _State) -> None:
+        """Trend and AR paths of all factors with their Fourier coefficients, given the own paths.
+
+        Observation n at time t sees c_n·x_t + (L_n ⊗ F_t)·β with c_n = (L_n,
+        B_n), x_t the shared state and β the Fourier coefficients: the
+        precision of x is banded and β borders it (:func:`draw_bordered`).
+        """
+        ab, d = self._shared_prior(s)
+        n_time = self.z.shape[1]
+        times = np.arange(n_time) * d
+        shared = np.concatenate([s.loading, s.short_loading], axis=1)  # (N, d)
         weight = self._cell_weight(s)
+        weighted = weight * (self.z - s.own_path)
         rows, cols = np.tril_indices(d)
         data = np.einsum("nt,nk,nl->tkl", weight, shared, shared, optimize=True)
-        if n_own:
-            full = np.zeros((n_time, d, d))
-            full[:, : r + rb, : r + rb] = data
-            full[:, r + rb :, : r + rb] = np.einsum("nt,nk->tnk", weight, shared)
-            full[:, np.arange(r + rb, d), np.arange(r + rb, d)] = weight.T
-            data = full
-        add(times[:, None] + rows[None, :], times[:, None] + cols[None, :], data[:, rows, cols])
-        weighted = weight * self.z
-        rhs = np.einsum("nt,nk->tk", weighted, design, optimize=True).ravel()
-        harmonics = self.fourier.shape[1]
-        if harmonics:
+        _add(ab, times[:, None] + rows, times[:, None] + cols, data[:, rows, cols])
+        rhs = np.einsum("nt,nk->tk", weighted, shared, optimize=True).ravel()
+        border = corner = corner_rhs = None
+        if self.fourier.shape[1]:
             fourier = self.fourier
-            cross = np.einsum("nt,nk,nj->tkj", weight, design, s.loading, optimize=True)
-            border = (cross[:, :, :, None] * fourier[:, None, None, :]).reshape(
-                n_time * d, r * harmonics)
+            cross = np.einsum("nt,nk,nj->tkj", weight, shared, s.loading, optimize=True)
+            border = cross[:, :, :, None] * fourier[:, None, None, :]
             per_time = np.einsum("nt,nk,nl->tkl", weight, s.loading, s.loading, optimize=True)
-            corner = np.einsum("tkl,th,tg->khlg", per_time, fourier, fourier,
-                               optimize=True).reshape(r * harmonics, r * harmonics)
-            corner += np.eye(r * harmonics) / self.spec.priors.seasonal**2
-            corner_rhs = np.einsum("nt,nk,th->kh", weighted, s.loading, fourier,
-                                   optimize=True).ravel()
-            x, beta = draw_bordered(ab, rhs, border, corner, corner_rhs, self.rng)
-            s.coef = beta.reshape(r, harmonics)
-        else:
+            corner = np.einsum("tkl,th,tg->khlg", per_time, fourier, fourier, optimize=True)
+            corner_rhs = np.einsum("nt,nk,th->kh", weighted, s.loading, fourier, optimize=True)
+        self._draw_shared(s, ab, rhs, border, corner, corner_rhs)
+
+    def _shared_given_signal(self, s: _State) -> None:
+        """The shared paths given the noise: the own paths are the signal minus the shared part.
+
+        With the noise held, the signal y = z - ε (at missing cells, the
+        current model value) is fixed and each own path is y_n minus the
+        shared part, an AR(1) with tridiagonal precision Q_n; the shared
+        state's precision gains Σ_n Q_n[t, s]·c_n·c_nᵀ, at lags 0 and 1 only.
+        """
+        ab, d = self._shared_prior(s)
+        n_time = self.z.shape[1]
+        times = np.arange(n_time) * d
+        signal = self._mean(s)
+        rho = s.own_rho
+        innovation = np.maximum(np.maximum(s.own_sd, np.sqrt(_TINY)) ** 2 * (1.0 - rho**2),
+                                _TINY)
+        # Q_n = (inner on the diagonal, end at both ends, off next to it) for each series.
+        inner, end, off = (1.0 + rho**2) / innovation, 1.0 / innovation, -rho / innovation
+        q_signal = inner[:, None] * signal
+        q_signal[:, [0, -1]] = end[:, None] * signal[:, [0, -1]]
+        q_signal[:, 1:] += off[:, None] * signal[:, :-1]
+        q_signal[:, :-1] += off[:, None] * signal[:, 1:]
+
+        shared = np.concatenate([s.loading, s.short_loading], axis=1)  # (N, d)
+        inner_cc, end_cc, off_cc = (np.einsum("n,nk,nl->kl", q, shared, shared)
+                                    for q in (inner, end, off))
+        rows, cols = np.tril_indices(d)
+        diagonal = np.broadcast_to(inner_cc[rows, cols], (n_time, rows.size)).copy()
+        diagonal[[0, -1]] = end_cc[rows, cols]
+        _add(ab, times[:, None] + rows, times[:, None] + cols, diagonal)
+        k, m = np.divmod(np.arange(d * d), d)  # every entry of the block Q[t, t-1]
+        _add(ab, times[1:, None] + k, times[:-1, None] + m,
+             np.broadcast_to(off_cc[k, m], (n_time - 1, k.size)))
+        rhs = np.einsum("nt,nk->tk", q_signal, shared, optimize=True).ravel()
+        border = corner = corner_rhs = None
+        if self.fourier.shape[1]:
+            fourier = self.fourier
+            inner_cl, end_cl, off_cl = (np.einsum("n,nk,nj->kj", q, shared, s.loading)
+                                        for q in (inner, end, off))
+            neighbours = np.zeros_like(fourier)
+            neighbours[1:] += fourier[:-1]
+            neighbours[:-1] += fourier[1:]
+            at_t = np.broadcast_to(inner_cl, (n_time, *inner_cl.shape)).copy()
+            at_t[[0, -1]] = end_cl
+            border = (at_t[:, :, :, None] * fourier[:, None, None, :]
+                      + off_cl[None, :, :, None] * neighbours[:, None, None, :])
+            ends = np.outer(fourier[0], fourier[0]) + np.outer(fourier[-1], fourier[-1])
+            lagged = fourier[1:].T @ fourier[:-1]
+            inner_ll, end_ll, off_ll = (np.einsum("n,nk,nl->kl", q, s.loading, s.loading)
+                                        for q in (inner, end, off))
+            corner = (np.einsum("kl,hg->khlg", inner_ll, fourier.T @ fourier - ends)
+                      + np.einsum("kl,hg->khlg", end_ll, ends)
+                      + np.einsum("kl,hg->khlg", off_ll, lagged + lagged.T))
+            corner_rhs = np.einsum("nt,nk,th->kh", q_signal, s.loading, fourier, optimize=True)
+        self._draw_shared(s, ab, rhs, border, corner, corner_rhs)
+        s.own_path = signal - self._mean(s, own=False)
+
+    def _draw_shared(self, s: _State, ab, rhs, border, corner, corner_rhs) -> None:
+        """Draw the shared state (and β when there is a border) and store it in ``s``."""
+        r, n_time = self.rank, self.z.shape[1]
+        if border is None:
             x = draw_banded(ab, rhs, self.rng)
-        x = x.reshape(n_time, d)
+        else:
+            size = corner.shape[0] * corner.shape[1]
+            corner = corner.reshape(size, size) + np.eye(size) / self.spec.priors.seasonal**2
+            x, beta = draw_bordered(ab, rhs, border.reshape(rhs.size, size), corner,
+                                    corner_rhs.ravel(), self.rng)
+            s.coef = beta.reshape(s.coef.shape)
+        x = x.reshape(n_time, -1)
         s.trend = x[:, :r].T.copy()
-        s.ar = x[:, r : r + rb].T.copy()
-        if n_own:
-            s.own_path = x[:, r + rb :].T.copy()
+        s.ar = x[:, r:].T.copy()
 
     def _loadings(self, s: _State) -> None:
         """Each series' loadings: Bayesian linear regression on the paths, batched.
@@ -357,7 +427,7 @@ class _Sampler:
             n_series, n_time = self.z.shape
             weighted = np.concatenate([weight[:, :, None] * design.T[None],
                                        (weight * target)[:, :, None]], axis=2)  # (N, T, k + 1)
-            lower = cholesky_banded(_own_band(s.own_sd, s.own_rho, weight), lower=True,
+            lower = cholesky_banded(ar1_band(s.own_sd, s.own_rho, weight), lower=True,
                                     check_finite=False)
             solved = cho_solve_banded((lower, True), weighted.reshape(n_series * n_time, -1),
                                       check_finite=False).reshape(weighted.shape)
@@ -609,22 +679,9 @@ def _dataset(kept, coords, rank, ar_factors, harmonics, spec) -> xr.Dataset:
                       | {dim: coords[dim] for dim in used})
 
 
-def _own_band(sd: np.ndarray, rho: np.ndarray, weight: np.ndarray) -> np.ndarray:
-    """Lower banded Q + W of every series' own AR(1) path, stacked block-diagonally.
-
-    Returns shape (2, N·T): one tridiagonal block per series (marginal sd
-    ``sd``, coefficient ``rho``) plus the observation precision ``weight``
-    (N, T) on the diagonal, without coupling between consecutive series.
-    """
-    n_series, n_time = weight.shape
-    innovation = np.maximum(np.maximum(sd, np.sqrt(_TINY)) ** 2 * (1.0 - rho**2), _TINY)[:, None]
-    ab = np.empty((2, n_series, n_time))
-    ab[0] = (1.0 + rho[:, None] ** 2) / innovation
-    ab[0, :, [0, -1]] = 1.0 / innovation[:, 0]
-    ab[1] = -rho[:, None] / innovation
-    ab[1, :, -1] = 0.0
-    ab[0] += weight
-    return ab.reshape(2, -1)
+def _add(ab: np.ndarray, rows: np.ndarray, cols: np.ndarray, values) -> None:
+    """Add ``values`` at the lower entries (rows, cols) of a lower banded matrix."""
+    ab[rows - cols, cols] += values
 
 
 def _own_marginal(resid: np.ndarray, base: np.ndarray, sd: np.ndarray, rho: np.ndarray,
@@ -651,7 +708,7 @@ def _own_marginal(resid: np.ndarray, base: np.ndarray, sd: np.ndarray, rho: np.n
     n_series, n_time = resid.shape
     weight = base / noise[:, None] ** 2
     rhs = weight * resid
-    lower = cholesky_banded(_own_band(sd, rho, weight), lower=True, check_finite=False)
+    lower = cholesky_banded(ar1_band(sd, rho, weight), lower=True, check_finite=False)
     solved = cho_solve_banded((lower, True), rhs.ravel(), check_finite=False)
     seen = base > 0
     log_q = -n_time * np.log(np.maximum(sd, _TINY) ** 2) - (n_time - 1) * np.log1p(-rho**2)

@@ -10,7 +10,7 @@ its canonical parameterisation).
 from __future__ import annotations
 
 import numpy as np
-from scipy.linalg import cho_solve_banded, cholesky_banded, solve_banded
+from scipy.linalg import cho_solve_banded, cholesky_banded
 from scipy.linalg.lapack import dtbtrs
 
 #: Smallest innovation variance used, so a path with sd → 0 or ρ → 1 stays
@@ -25,13 +25,35 @@ def ar1_precision(rho: float, sd: float, n_time: int) -> np.ndarray:
     ``ab[1, :-1]`` the sub-diagonal (the layout of scipy.linalg.cholesky_banded
     with ``lower=True``).
     """
-    innovation = max(sd**2 * (1.0 - rho**2), _TINY)
-    ab = np.empty((2, n_time))
-    ab[0] = 1.0 + rho**2
-    ab[0, [0, -1]] = 1.0
-    ab[1] = -rho
-    ab[1, -1] = 0.0
-    return ab / innovation
+    return ar1_band(np.array([sd]), np.array([rho]), np.zeros((1, n_time)))
+
+
+def ar1_band(sd: np.ndarray, rho: np.ndarray, weight: np.ndarray) -> np.ndarray:
+    """Lower banded ``Q + W`` of many AR(1) paths, stacked block-diagonally.
+
+    Parameters
+    ----------
+    sd, rho : ndarray, shape (rows,)
+        Marginal sd and coefficient of each stationary AR(1) path.
+    weight : ndarray, shape (rows, time)
+        Observation precision of each cell (0 where unobserved).
+
+    Returns
+    -------
+    ndarray, shape (2, rows·time)
+        One tridiagonal block per path, without coupling between consecutive
+        paths, so one banded factorisation serves them all in O(rows·time).
+    """
+    rows, n_time = weight.shape
+    innovation = np.maximum(np.maximum(sd, np.sqrt(_TINY)) ** 2 * (1.0 - rho**2), _TINY)
+    innovation = innovation[:, None]
+    ab = np.empty((2, rows, n_time))
+    ab[0] = (1.0 + rho[:, None] ** 2) / innovation
+    ab[0, :, [0, -1]] = 1.0 / innovation[:, 0]
+    ab[1] = -rho[:, None] / innovation
+    ab[1, :, -1] = 0.0
+    ab[0] += weight
+    return ab.reshape(2, -1)
 
 
 def draw_ar1_given_noisy(
@@ -56,25 +78,13 @@ def draw_ar1_given_noisy(
     Returns
     -------
     ndarray, shape (rows, time)
-        One exact draw of every path from its conditional distribution.
+        One exact draw of every path from its conditional distribution; all
+        rows share one banded factorisation (no Python loop over rows).
     """
-    rows, n_time = resid.shape
     seen = ~np.isnan(resid)
     weight = seen / np.maximum(noise_sd, np.sqrt(_TINY))[:, None] ** 2
     rhs = np.where(seen, resid, 0.0) * weight
-    shocks = rng.standard_normal((rows, n_time))
-    out = np.empty((rows, n_time))
-    upper = np.zeros((2, n_time))
-    for i in range(rows):
-        ab = ar1_precision(float(rho[i]), float(sd[i]), n_time)
-        ab[0] += weight[i]
-        lower = cholesky_banded(ab, lower=True)
-        mean = cho_solve_banded((lower, True), rhs[i])
-        # x = mean + L^-T z has covariance (L L^T)^-1 = Q^-1.
-        upper[0, 1:] = lower[1, :-1]
-        upper[1] = lower[0]
-        out[i] = mean + solve_banded((0, 1), upper, shocks[i])
-    return out
+    return draw_banded(ar1_band(sd, rho, weight), rhs.ravel(), rng).reshape(resid.shape)
 
 
 def draw_banded(ab: np.ndarray, rhs: np.ndarray, rng: np.random.Generator) -> np.ndarray:
