@@ -140,7 +140,7 @@ def test_own_marginal_matches_the_dense_normal_density():
     base = np.ones((2, n_time))
     base[1, [3, 4, 17]] = 0.0
     sd, rho, noise = np.array([0.9, 0.4]), np.array([0.8, 0.3]), np.array([0.5, 0.2])
-    got = gibbs._own_marginal(resid, base, sd, rho, noise)
+    got, _ = gibbs._own_marginal(resid, base, sd, rho, noise)
     lags = np.abs(np.subtract.outer(np.arange(n_time), np.arange(n_time)))
     for n in range(2):
         seen = base[n] > 0

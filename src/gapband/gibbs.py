@@ -59,10 +59,10 @@ from rich.progress import (
     TextColumn,
     TimeRemainingColumn,
 )
-from scipy.linalg import cho_solve_banded, cholesky_banded
+from scipy.linalg import cholesky_banded
 from scipy.stats import geninvgauss
 
-from gapband.gmrf import ar1_band, draw_banded, draw_bordered
+from gapband.gmrf import ar1_band, draw_banded, draw_bordered, draw_factored, solve_lower
 from gapband.spec import ModelSpec
 
 #: Floors that keep variances and sums of squares strictly positive.
@@ -77,7 +77,7 @@ _PROPOSAL_WIDEN = 1.25
 _SCALE_STEPS = 5
 
 #: Collapsed Metropolis steps on each series' own sd, coefficient and noise sd per sweep.
-_OWN_STEPS = 3
+_OWN_STEPS = 2
 
 
 @dataclass
@@ -155,11 +155,11 @@ class _Sampler:
         the third (a partially collapsed Gibbs sampler; van Dyk & Park, JASA
         2008: each marginalised draw is followed by a draw of what it left out).
         """
-        if self.spec.own_ar:
-            for _ in range(_OWN_STEPS):
-                self._own_collapsed(s, tuning)
-        self._loadings(s)
-        self._paths(s)
+        # The factor of every series' own-path precision at the new own
+        # scales, shared by the next two blocks (their weights are unchanged).
+        factor = self._own_collapsed(s, tuning) if self.spec.own_ar else None
+        self._loadings(s, factor)
+        self._paths(s, factor)
         if self.spec.noise == "student_t":
             self._weights(s)
         if self.spec.fixed.noise is None:
@@ -248,7 +248,7 @@ class _Sampler:
         """Precision of each cell's observation (0 where unobserved), (N, T)."""
         return self.seen * s.weight / np.maximum(s.noise, _TINY)[:, None] ** 2
 
-    def _paths(self, s: _State) -> None:
+    def _paths(self, s: _State, factor: np.ndarray | None = None) -> None:
         """The shared paths, and the own paths when the spec has them.
 
         With own paths, three exact draws in turn: the own paths given the
@@ -262,18 +262,23 @@ class _Sampler:
         O(N·T) in the number of series, not O(N²·T).
         """
         if self.spec.own_ar:
-            self._own_paths(s)
+            self._own_paths(s, factor)
         self._shared_given_own(s)
         if self.spec.own_ar:
             self._shared_given_signal(s)
 
-    def _own_paths(self, s: _State) -> None:
-        """Every series' own AR(1) path given the rest: one stacked tridiagonal draw."""
+    def _own_paths(self, s: _State, factor: np.ndarray | None = None) -> None:
+        """Every series' own AR(1) path given the rest: one stacked tridiagonal draw.
+
+        ``factor`` is the Cholesky factor of the paths' precision when already known.
+        """
         weight = self._cell_weight(s)
+        if factor is None:
+            factor = cholesky_banded(ar1_band(s.own_sd, s.own_rho, weight), lower=True,
+                                     check_finite=False)
         resid = self.z - self._mean(s, own=False)
-        x = draw_banded(ar1_band(s.own_sd, s.own_rho, weight), (weight * resid).ravel(),
-                        self.rng)
-        s.own_path = x.reshape(self.z.shape)
+        s.own_path = draw_factored(factor, (weight * resid).ravel(), self.rng).reshape(
+            self.z.shape)
 
     def _shared_prior(self, s: _State) -> tuple[np.ndarray, int]:
         """Prior precision of the shared state, lower banded, and the state size d.
@@ -403,12 +408,13 @@ class _Sampler:
         s.trend = x[:, :r].T.copy()
         s.ar = x[:, r:].T.copy()
 
-    def _loadings(self, s: _State) -> None:
+    def _loadings(self, s: _State, factor: np.ndarray | None = None) -> None:
         """Each series' loadings: Bayesian linear regression on the paths, batched.
 
         With own AR(1) paths, these are integrated out: the regression error
         of series n is then the AR(1) path plus noise, with covariance K_n,
-        and ``K⁻¹ = W - W(Q + W)⁻¹W`` (Woodbury) needs only tridiagonal solves.
+        and ``K⁻¹ = W - W(Q + W)⁻¹W`` (Woodbury) needs only tridiagonal solves
+        (``factor``: the Cholesky factor of Q + W, when already known).
         """
         fixed = self.spec.fixed.loading is not None
         if fixed and not self.ar_factors:
@@ -427,11 +433,13 @@ class _Sampler:
             n_series, n_time = self.z.shape
             weighted = np.concatenate([weight[:, :, None] * design.T[None],
                                        (weight * target)[:, :, None]], axis=2)  # (N, T, k + 1)
-            lower = cholesky_banded(ar1_band(s.own_sd, s.own_rho, weight), lower=True,
-                                    check_finite=False)
-            solved = cho_solve_banded((lower, True), weighted.reshape(n_series * n_time, -1),
-                                      check_finite=False).reshape(weighted.shape)
-            correction = np.einsum("ntk,ntl->nkl", weighted[:, :, :-1], solved, optimize=True)
+            if factor is None:
+                factor = cholesky_banded(ar1_band(s.own_sd, s.own_rho, weight), lower=True,
+                                         check_finite=False)
+            # With Q + W = L·Lᵀ: XᵀW(Q + W)⁻¹WX = VᵀV for V = L⁻¹WX.
+            solved = solve_lower(factor, weighted.reshape(n_series * n_time, -1)).reshape(
+                weighted.shape)
+            correction = np.einsum("ntk,ntl->nkl", solved[:, :, :-1], solved, optimize=True)
             precision -= correction[:, :, :-1]
             rhs -= correction[:, :, -1]
         precision += np.eye(design.shape[0]) / self.spec.priors.loading**2
@@ -441,7 +449,7 @@ class _Sampler:
         if self.ar_factors:
             s.short_loading = drawn[:, -self.ar_factors:].copy()
 
-    def _own_collapsed(self, s: _State, tuning: bool) -> None:
+    def _own_collapsed(self, s: _State, tuning: bool) -> np.ndarray:
         """Own sd, own AR(1) coefficient and noise sd with the own path integrated out.
 
         Given everything but the own path, the residual of each series is an
@@ -450,6 +458,8 @@ class _Sampler:
         logit rho, log noise sd) under it, followed by a fresh draw of the
         path, moves along the sd/noise trade-off that a path-given-scale
         update would cross only slowly (collapsed Gibbs; Liu, JASA 1994).
+        Returns the Cholesky factor of the own paths' precision given the
+        data at the new values (see :func:`_own_marginal`).
         """
         spec, rng = self.spec, self.rng
         resid = self.z - self._mean(s, own=False)
@@ -459,7 +469,7 @@ class _Sampler:
 
         def log_post(theta):
             sd, rho, noise = np.exp(theta[:, 0]), _expit(theta[:, 1]), np.exp(theta[:, 2])
-            value = _own_marginal(resid, base, sd, rho, noise)
+            value, factor = _own_marginal(resid, base, sd, rho, noise)
             # Priors in the transformed coordinates (with their Jacobians):
             # HalfNormal on the sds, Uniform(0, 1) on rho.
             value += np.log(rho) + np.log1p(-rho)
@@ -467,21 +477,27 @@ class _Sampler:
                 value += theta[:, 0] - 0.5 * (sd / spec.priors.own) ** 2
             if free[2]:
                 value += theta[:, 2] - 0.5 * (noise / spec.priors.noise) ** 2
-            return value
+            return value, factor.reshape(2, *self.z.shape)
 
-        now = log_post(current)
-        shock = np.einsum("nij,nj->ni", self.own_shape, rng.standard_normal(current.shape))
-        proposal = current + self.own_step[:, None] * free * shock
-        inside = np.abs(proposal[:, 1]) < 30.0  # rho within (0, 1) in floating point
-        then = np.where(inside, log_post(np.where(inside[:, None], proposal, current)), -np.inf)
-        accept = np.log(rng.random(now.size)) < then - now
-        current = np.where(accept[:, None], proposal, current)
+        now, factor = log_post(current)
+        for _ in range(_OWN_STEPS):
+            shock = np.einsum("nij,nj->ni", self.own_shape, rng.standard_normal(current.shape))
+            proposal = current + self.own_step[:, None] * free * shock
+            inside = np.abs(proposal[:, 1]) < 30.0  # rho within (0, 1) in floating point
+            then, proposed = log_post(np.where(inside[:, None], proposal, current))
+            then = np.where(inside, then, -np.inf)
+            accept = np.log(rng.random(now.size)) < then - now
+            current = np.where(accept[:, None], proposal, current)
+            now = np.where(accept, then, now)
+            # The rows of the stacked factor are each series' own: keep the accepted ones.
+            factor = np.where(accept[None, :, None], proposed, factor)
+            self.accepted["own"] += int(accept.sum())
+            self.proposed["own"] += accept.size
+            if tuning:
+                self._adapt_own(current, accept, free)
         s.own_sd, s.own_rho, s.noise = (np.exp(current[:, 0]), _expit(current[:, 1]),
                                         np.exp(current[:, 2]))
-        self.accepted["own"] += int(accept.sum())
-        self.proposed["own"] += accept.size
-        if tuning:
-            self._adapt_own(current, accept, free)
+        return factor.reshape(2, -1)
 
     def _adapt_own(self, current: np.ndarray, accept: np.ndarray, free: np.ndarray) -> None:
         """Adapt the own-scale proposal during burn-in.
@@ -685,7 +701,7 @@ def _add(ab: np.ndarray, rows: np.ndarray, cols: np.ndarray, values) -> None:
 
 
 def _own_marginal(resid: np.ndarray, base: np.ndarray, sd: np.ndarray, rho: np.ndarray,
-                  noise: np.ndarray) -> np.ndarray:
+                  noise: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Log density of each row's observed residuals: stationary AR(1) path plus noise.
 
     Parameters
@@ -698,6 +714,12 @@ def _own_marginal(resid: np.ndarray, base: np.ndarray, sd: np.ndarray, rho: np.n
     sd, rho, noise : ndarray, shape (N,)
         Marginal sd and coefficient of the path, noise sd.
 
+    Returns
+    -------
+    logp : ndarray, shape (N,)
+    factor : ndarray, shape (2, N·T)
+        The lower banded Cholesky factor of Q + W, stacked over rows.
+
     Notes
     -----
     With path precision Q, observation precision W and b = W·r, the
@@ -709,15 +731,17 @@ def _own_marginal(resid: np.ndarray, base: np.ndarray, sd: np.ndarray, rho: np.n
     weight = base / noise[:, None] ** 2
     rhs = weight * resid
     lower = cholesky_banded(ar1_band(sd, rho, weight), lower=True, check_finite=False)
-    solved = cho_solve_banded((lower, True), rhs.ravel(), check_finite=False)
+    # b'(Q + W)⁻¹b = |L⁻¹b|² with Q + W = L·Lᵀ.
+    half = solve_lower(lower, rhs.ravel()).reshape(n_series, n_time)
     seen = base > 0
     log_q = -n_time * np.log(np.maximum(sd, _TINY) ** 2) - (n_time - 1) * np.log1p(-rho**2)
-    return (-0.5 * (weight * resid**2).sum(axis=1)
-            + 0.5 * (rhs * solved.reshape(n_series, n_time)).sum(axis=1)
+    logp = (-0.5 * (weight * resid**2).sum(axis=1)
+            + 0.5 * (half**2).sum(axis=1)
             + 0.5 * np.where(seen, np.log(np.where(seen, weight, 1.0)), 0.0).sum(axis=1)
             + 0.5 * log_q
             - np.log(lower[0].reshape(n_series, n_time)).sum(axis=1)
             - 0.5 * seen.sum(axis=1) * np.log(2.0 * np.pi))
+    return logp, lower
 
 
 def _walk_logp(path: np.ndarray, step_sd: float, level_sd: float) -> float:

@@ -10,7 +10,7 @@ its canonical parameterisation).
 from __future__ import annotations
 
 import numpy as np
-from scipy.linalg import cho_solve_banded, cholesky_banded
+from scipy.linalg import cholesky_banded
 from scipy.linalg.lapack import dtbtrs
 
 #: Smallest innovation variance used, so a path with sd → 0 or ρ → 1 stays
@@ -109,9 +109,16 @@ def draw_banded(ab: np.ndarray, rhs: np.ndarray, rng: np.random.Generator) -> np
     Q⁻¹ (Rue & Held, 2005, algorithm 2.5); the factorisation and both solves
     are banded, so a draw costs O(n·u²).
     """
-    lower = cholesky_banded(ab, lower=True, check_finite=False)
-    mean = cho_solve_banded((lower, True), rhs, check_finite=False)
-    return mean + _lower_transpose_solve(lower, rng.standard_normal(ab.shape[1]))
+    return draw_factored(cholesky_banded(ab, lower=True, check_finite=False), rhs, rng)
+
+
+def draw_factored(lower: np.ndarray, rhs: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    """:func:`draw_banded` given the lower banded Cholesky factor L of Q.
+
+    ``x = L⁻ᵀ(L⁻¹b + z)``: the mean ``Q⁻¹b`` plus ``L⁻ᵀz``, in two triangular solves.
+    """
+    return solve_lower(lower, solve_lower(lower, rhs) + rng.standard_normal(rhs.shape),
+                       transpose=True)
 
 
 def draw_bordered(
@@ -138,22 +145,22 @@ def draw_bordered(
     """
     lower = cholesky_banded(ab, lower=True, check_finite=False)
     # With Q = L·Lᵀ: Bᵀ·Q⁻¹·B = VᵀV and Bᵀ·Q⁻¹·b = Vᵀw for V = L⁻¹B, w = L⁻¹b.
-    solved, info = dtbtrs(lower, np.column_stack([border, rhs]), uplo="L", trans="N")
-    if info:
-        raise np.linalg.LinAlgError(f"banded triangular solve failed (info = {info})")
+    solved = solve_lower(lower, np.column_stack([border, rhs]))
     v, w = solved[:, :-1], solved[:, -1]
     schur = corner - v.T @ v
     schur_rhs = corner_rhs - v.T @ w
     factor = np.linalg.cholesky(schur)
     beta = np.linalg.solve(schur, schur_rhs) + np.linalg.solve(
         factor.T, rng.standard_normal(corner_rhs.size))
-    mean = cho_solve_banded((lower, True), rhs - border @ beta, check_finite=False)
-    return mean + _lower_transpose_solve(lower, rng.standard_normal(ab.shape[1])), beta
+    return draw_factored(lower, rhs - border @ beta, rng), beta
 
 
-def _lower_transpose_solve(lower: np.ndarray, z: np.ndarray) -> np.ndarray:
-    """Solve Lᵀ·x = z for a lower banded Cholesky factor L (LAPACK dtbtrs)."""
-    x, info = dtbtrs(lower, z[:, None], uplo="L", trans="T")
+def solve_lower(lower: np.ndarray, b: np.ndarray, transpose: bool = False) -> np.ndarray:
+    """Solve L·x = b (or Lᵀ·x = b) for a lower banded Cholesky factor L (LAPACK dtbtrs).
+
+    ``b`` may be a vector (n,) or a matrix (n, k) of right-hand sides.
+    """
+    x, info = dtbtrs(lower, b.reshape(b.shape[0], -1), uplo="L", trans="T" if transpose else "N")
     if info:
         raise np.linalg.LinAlgError(f"banded triangular solve failed (info = {info})")
-    return x[:, 0]
+    return x.reshape(b.shape)
