@@ -201,13 +201,30 @@ def test_same_seed_same_draws_names_match_the_pymc_model():
     assert first.posterior.equals(again.posterior)
     assert not np.array_equal(first.posterior["trend"].values, other.posterior["trend"].values)
     names = {v.name for v in first.built.model.free_RVs + first.built.model.deterministics}
-    assert set(first.posterior.data_vars) == names - {"trend_steps"}
-    for name in first.posterior.data_vars:  # same dims as the PyMC model declares
+    # Own paths are kept at the missing cells and as a mean, not whole.
+    assert set(first.posterior.data_vars) == (names - {"trend_steps", "own_unit"}
+                                              | set(gibbs.OWN_KEPT))
+    for name in names & set(first.posterior.data_vars):  # the PyMC model's dims
         assert first.posterior[name].dims[2:] == tuple(first.built.model.named_vars_to_dims
                                                        .get(name, ())), name
+    np.testing.assert_array_equal(first.posterior["gap"].values,
+                                  np.flatnonzero(panel["value"].isnull().values.ravel()))
     assert {"build", "tune", "sample", "diagnostics"} <= set(first.timings)
     assert first.diagnostics["divergences"] == 0
     assert first.diagnostics["n_draws"] == 60
+
+
+def test_chains_in_processes_give_the_draws_of_one_process():
+    panel, _, _ = _simulated(n_time=60)
+    small = spec.parse(SIMPLE | {"own_ar": True})
+    built = inference.build(panel, small)
+    coords = {name: np.asarray(values) for name, values in built.model.coords.items()}
+    runs = [gibbs.sample(built.z, built.fourier.values, small, rank=built.rank,
+                         ar_factors=built.ar_factors, coords=coords, draws=15, tune=5,
+                         chains=2, seed=3, cores=cores)
+            for cores in (1, 2)]
+    assert runs[0][0].equals(runs[1][0])
+    assert [run[1]["cores"] for run in runs] == [1, 2]
 
 
 def test_student_t_noise_runs_and_weights_observed_cells():

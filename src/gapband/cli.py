@@ -9,6 +9,7 @@ import functools
 import logging
 import sys
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import click
 from rich.console import Console
@@ -17,6 +18,9 @@ from rich.table import Table
 
 import gapband
 from gapband.errors import GapbandError, InputError, SpecError, UsageError
+
+if TYPE_CHECKING:
+    from gapband.filling import FillOptions
 
 EXIT_INTERNAL, EXIT_USAGE, EXIT_INPUT = 1, 2, 3
 
@@ -118,28 +122,63 @@ def parse_levels(ctx, param, text: str) -> tuple[float, ...]:
         raise click.BadParameter(f"{text!r} is not a comma-separated list of percentages") from None
 
 
+def model_options(command):
+    """Options shared by every command that fits the model: spec, inference, levels, seed."""
+    options = [
+        click.option("--model", type=click.Path(path_type=Path),
+                     help="Model spec (TOML); default: the preset for the data's time step."),
+        click.option("--transform", type=click.Choice(["none", "log", "log1p"]),
+                     help="Override the spec's transform; 'log' keeps fills of positive, skewed "
+                     "quantities positive."),
+        click.option("--method", type=click.Choice(["gibbs", "advi", "nuts"]), default="gibbs",
+                     show_default=True,
+                     help="gibbs: exact block-Gibbs sampler; advi: fast, approximate (check "
+                     "with holdout); nuts: exact, slow."),
+        click.option("--draws", type=click.IntRange(10), default=1000, show_default=True,
+                     help="Posterior draws (per chain for nuts)."),
+        click.option("--tune", type=click.IntRange(0), default=1000, show_default=True,
+                     help="Warm-up steps (nuts) or burn-in sweeps (gibbs) per chain."),
+        click.option("--chains", type=click.IntRange(1), default=2, show_default=True,
+                     help="Chains (nuts, gibbs)."),
+        click.option("--levels", callback=parse_levels, default="50,80,90,95",
+                     show_default=True, help="Central credible-interval levels in percent."),
+        click.option("--seed", type=int, default=0, show_default=True, help="Random seed."),
+        click.option("--min-observed", type=click.IntRange(1), default=10, show_default=True,
+                     help="Series with fewer observations are not filled."),
+        click.option("--quiet", is_flag=True, help="No progress bars."),
+    ]
+    for option in reversed(options):
+        command = option(command)
+    return command
+
+
+#: The parameters :func:`model_options` adds, split off a command's keywords.
+MODEL_OPTION_NAMES = ("model", "transform", "method", "draws", "tune", "chains", "levels",
+                      "seed", "min_observed", "quiet")
+
+
+def fill_settings(kw: dict, **rules) -> tuple[Path | None, str | None, FillOptions]:
+    """Pop the model options from ``kw``: (model, transform, FillOptions)."""
+    from gapband import filling
+
+    given = {name: kw.pop(name) for name in MODEL_OPTION_NAMES}
+    options = filling.FillOptions(
+        method=given["method"], draws=given["draws"], tune=given["tune"],
+        chains=given["chains"], levels=given["levels"], seed=given["seed"],
+        rules=filling.FlagRules(min_observed=given["min_observed"], **rules),
+        progress=not given["quiet"],
+    )
+    return given["model"], given["transform"], options
+
+
 @cli.command()
 @read_options
+@model_options
 @click.option("--out", "out_dir", type=click.Path(path_type=Path), required=True,
               help="Folder for filled.nc, filled.csv and summary.json.")
-@click.option("--model", type=click.Path(path_type=Path),
-              help="Model spec (TOML); default: the preset for the data's time step.")
-@click.option("--transform", type=click.Choice(["none", "log", "log1p"]),
-              help="Override the spec's transform; 'log' keeps fills of positive, skewed "
-              "quantities positive.")
-@click.option("--method", type=click.Choice(["gibbs", "advi", "nuts"]), default="gibbs",
-              show_default=True,
-              help="gibbs: exact block-Gibbs sampler; advi: fast, approximate (check with "
-              "holdout); nuts: exact, slow.")
-@click.option("--draws", type=click.IntRange(10), default=1000, show_default=True,
-              help="Posterior draws (per chain for nuts).")
-@click.option("--tune", type=click.IntRange(0), default=1000, show_default=True,
-              help="Warm-up steps (nuts) or burn-in sweeps (gibbs) per chain.")
-@click.option("--chains", type=click.IntRange(1), default=2, show_default=True,
-              help="Chains (nuts, gibbs).")
-@click.option("--levels", callback=parse_levels, default="50,80,90,95", show_default=True,
-              help="Central credible-interval levels in percent.")
-@click.option("--seed", type=int, default=0, show_default=True, help="Random seed.")
+@click.option("--calibration", type=click.Path(path_type=Path), metavar="HOLDOUT_JSON",
+              help="Widen the intervals by the factors in this holdout.json "
+              "(from gapband holdout with the same --method).")
 @click.option("--flag-level", type=float, default=90, show_default=True,
               help="Interval level the width rules look at.")
 @click.option("--max-width", type=click.FloatRange(0, min_open=True),
@@ -148,39 +187,113 @@ def parse_levels(ctx, param, text: str) -> tuple[float, ...]:
               help="... or wider than this times the series' 5-95 % observed range.")
 @click.option("--max-gap", metavar="DURATION",
               help="Flag fills in gaps longer than DURATION (e.g. '72h') uncertain.")
-@click.option("--min-observed", type=click.IntRange(1), default=10, show_default=True,
-              help="Series with fewer observations are not filled.")
 @click.option("--table", type=click.Choice(["csv", "parquet"]), default="csv",
               show_default=True, help="Format of the long table.")
 @click.option("--overwrite", is_flag=True, help="Replace existing outputs in --out.")
-@click.option("--quiet", is_flag=True, help="No progress bars.")
 @handle_errors
-def fill(input_path, out_dir, model, transform, method, draws, tune, chains, levels, seed,
-         flag_level, max_width, max_rel_width, max_gap, min_observed, table, overwrite, quiet,
-         **read_kw):
+def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width, max_gap, table,
+         overwrite, **kw):
     """Fill every missing cell of INPUT with a credible interval and a flag."""
     from gapband import filling
     from gapband.outputs import prepare_dir
 
+    model, transform, options = fill_settings(kw, level=flag_level, max_width=max_width,
+                                              max_rel_width=max_rel_width, max_gap=max_gap)
     prepare_dir(out_dir, ["filled.nc", f"filled.{table}", "summary.json"], overwrite)
-    panel = gapband.read(input_path, **read_kw)
-    options = filling.FillOptions(
-        method=method, draws=draws, tune=tune, chains=chains, levels=levels, seed=seed,
-        rules=filling.FlagRules(level=flag_level, max_width=max_width,
-                                max_rel_width=max_rel_width, max_gap=max_gap,
-                                min_observed=min_observed),
-        progress=not quiet,
-    )
-    result, summary = filling.fill(panel, model=model, transform=transform, options=options)
+    panel = gapband.read(input_path, **kw)
+    result, summary = filling.fill(panel, model=model, transform=transform, options=options,
+                                   calibration=calibration)
     written = filling.write_fill(result, summary, out_dir, table=table, overwrite=True)
     for warning in summary["diagnostics"].get("warnings", []):
         errors.print(f"[bold yellow]warning:[/] {escape(warning)}", highlight=False)
+    if summary["calibration"] is not None:
+        factors = summary["calibration"]["factors"]
+        console.print("intervals widened by " + ", ".join(
+            f"{factor:.3g} ({level} %)" for level, factor in factors.items()), highlight=False)
     counts = summary["flags"]["overall"]
     console.print(
         "cells: " + ", ".join(f"{n} {meaning}" for meaning, n in counts.items()), highlight=False
     )
     for path in written:
         console.print(f"wrote {path}", highlight=False)
+
+
+def parse_baselines(ctx, param, text: str) -> tuple[str, ...]:
+    """Parse ``--baselines linear,kalman`` (an empty text: none)."""
+    from gapband.baselines import NAMES
+
+    chosen = tuple(part.strip() for part in text.split(",") if part.strip())
+    unknown = [name for name in chosen if name not in NAMES]
+    if unknown:
+        raise click.BadParameter(f"{unknown[0]!r} is not a baseline; choose from "
+                                 f"{', '.join(NAMES)}")
+    return chosen
+
+
+@cli.command()
+@read_options
+@model_options
+@click.option("--out", "out_dir", type=click.Path(path_type=Path), required=True,
+              help="Folder for holdout.json.")
+@click.option("--scheme", type=click.Choice(["random", "blocks", "outage"]), default="random",
+              show_default=True,
+              help="Hide random cells, blocks as long as the series' own gaps, or one "
+              "series for a window.")
+@click.option("--fraction", type=float, default=0.2, show_default=True,
+              help="Share of each series' observed cells to hide (outage: share of the "
+              "record the window spans); in (0, 1).")
+@click.option("--repeats", type=click.IntRange(1), default=1, show_default=True,
+              help="Masks (and refits) to pool the scores over.")
+@click.option("--baselines", "baseline_names", callback=parse_baselines,
+              default="linear,seasonal,kalman", show_default=True,
+              help="Baselines scored on the same hidden cells (comma-separated; '' for none).")
+@click.option("--overwrite", is_flag=True, help="Replace an existing holdout.json in --out.")
+@handle_errors
+def holdout(input_path, out_dir, scheme, fraction, repeats, baseline_names, overwrite, **kw):
+    """Hide observed cells of INPUT, refit, score the fills and derive widening factors."""
+    from gapband.holdout import run, write
+    from gapband.outputs import prepare_dir
+
+    model, transform, options = fill_settings(kw)
+    prepare_dir(out_dir, ["holdout.json"], overwrite)
+    panel = gapband.read(input_path, **kw)
+    report = run(panel, model=model, transform=transform, options=options, scheme=scheme,
+                 fraction=fraction, repeats=repeats, baseline_names=baseline_names)
+    path = write(report, out_dir, overwrite=True)
+    console.print(scores_table(report))
+    factors = report["widening"]["factors"]
+    console.print("widening factors: " + ", ".join(
+        f"{level} % x{'-' if f is None else format(f, '.3g')}" for level, f in factors.items()),
+        highlight=False)
+    console.print(f"wrote {path}", highlight=False)
+
+
+def scores_table(report: dict) -> Table:
+    """The overall holdout scores per predictor as a terminal table."""
+    settings = report["settings"]
+    levels = [f"{level:g}" for level in settings["levels"]]
+    hidden = sum(r["hidden_total"] for r in report["repeats"])
+    table = Table(
+        title=f"{escape(str(report['source']))}: {settings['scheme']} holdout, "
+        f"{hidden} cells hidden over {settings['repeats']} repeat(s)",
+        caption="coverage: share of hidden values inside the central interval; "
+        "CRPS, MAE, RMSE in data units (smaller is better)",
+    )
+    for header in ("fill", *(f"cover {lv} %" for lv in levels), "CRPS", "MAE", "RMSE"):
+        table.add_column(header, justify="left" if header == "fill" else "right", no_wrap=True)
+    for name, breakdown in report["scores"].items():
+        overall = breakdown["overall"]
+        coverage = overall["coverage"] or {}
+        table.add_row(
+            name, *(_number(coverage.get(lv), ".3f") for lv in levels),
+            _number(overall["crps"], ".4g"), _number(overall["mae"], ".4g"),
+            _number(overall["rmse"], ".4g"),
+        )
+    return table
+
+
+def _number(value: float | None, spec: str) -> str:
+    return "-" if value is None else format(value, spec)
 
 
 @cli.command()

@@ -9,13 +9,14 @@ atomically. The command line and the demo call these two.
 from __future__ import annotations
 
 import dataclasses
+import hashlib
 import json
 import logging
 import time
 from dataclasses import dataclass, field
 from importlib.metadata import version
 from pathlib import Path
-from typing import Literal
+from typing import TYPE_CHECKING, Literal
 
 import numpy as np
 import pandas as pd
@@ -24,12 +25,19 @@ import xarray as xr
 from gapband import flags, outputs
 from gapband.errors import GapbandError, InputError, UsageError
 from gapband.panel import step_of
+from gapband.scores import level_key
 from gapband.spec import ModelSpec, check_against, load, preset_for
+
+if TYPE_CHECKING:
+    from gapband.inference import Fit
 
 log = logging.getLogger(__name__)
 
 Method = Literal["gibbs", "nuts", "advi"]
 DEFAULT_LEVELS: tuple[float, ...] = (50, 80, 90, 95)
+#: What ``gapband holdout`` writes into ``holdout.json`` and ``--calibration`` expects.
+CALIBRATION_FORMAT = "gapband holdout"
+CALIBRATION_VERSION = 1
 _VERSIONED = ("gapband", "numpy", "scipy", "pandas", "xarray", "pymc", "pytensor", "arviz")
 
 
@@ -112,6 +120,7 @@ def fill(
     model: str | Path | ModelSpec | None = None,
     transform: str | None = None,
     options: FillOptions | None = None,
+    calibration: str | Path | None = None,
 ) -> tuple[xr.Dataset, dict]:
     """Fill every missing cell of a Panel from the posterior predictive.
 
@@ -125,25 +134,31 @@ def fill(
         Overrides the spec's transform (use "log" for positive, skewed data).
     options : FillOptions, optional
         Method, draws, levels, seed and flag rules.
+    calibration : path, optional
+        A ``holdout.json`` written by :func:`gapband.holdout.run`: its
+        widening factors are applied to every interval (see :func:`widen`)
+        before the flags are computed.
 
     Returns
     -------
     result : Dataset
         The Panel plus ``filled``, ``fill_mean``, ``fill_median``,
         ``fill_sd``, ``lower_<L>``/``upper_<L>`` and ``fill_flag``, with
-        provenance attributes.
+        provenance attributes (``gapband_calibration`` when widened).
     summary : dict
         JSON-ready: capture before and after, flag counts, diagnostics,
-        timings.
+        timings, the calibration applied (or None).
 
     Raises
     ------
     InputError
-        Nothing observed, or no series with enough observations.
+        Nothing observed, no series with enough observations, or an
+        unreadable calibration file.
     UsageError, SpecError
-        Bad options or spec.
+        Bad options or spec, or a calibration file that does not cover the
+        levels or the method.
     """
-    from gapband import inference, predict  # PyMC is imported only when a fit runs
+    from gapband import predict  # PyMC is imported only when a fit runs
 
     options = options or FillOptions()
     levels = check_levels(tuple(options.levels))
@@ -154,52 +169,98 @@ def fill(
             f"the flag rule looks at the {options.rules.level:g} % interval, which is not "
             f"among the levels {list(levels)}; add it to --levels or change --flag-level"
         )
-    spec, spec_label = resolve_spec(panel, model, transform)
-    fit_panel = fittable(panel, options.rules.min_observed)
-    log.info(
-        "model: %s; method: %s; %d of %d series fitted",
-        spec_label, options.method, fit_panel.sizes["series"], panel.sizes["series"],
-    )
-
+    widening = None if calibration is None else read_calibration(calibration)
+    if widening is not None:
+        widening.check(options.method, levels)
+    fitted = fit_panel(panel, model=model, transform=transform, options=options)
+    log.info("fit done in %.1f s; summarising the posterior predictive", fitted.seconds)
     started = time.perf_counter()
-    fitted = inference.fit(
-        fit_panel, spec, method=options.method, draws=options.draws, tune=options.tune,
-        chains=options.chains, seed=options.seed, progress=options.progress,
-    )
-    fit_seconds = time.perf_counter() - started
-    log.info("fit done in %.1f s; summarising the posterior predictive", fit_seconds)
-    summaries = predict.summarise(fitted, fit_panel, levels=levels, seed=options.seed,
+    summaries = predict.summarise(fitted.fit, fitted.panel, levels=levels, seed=options.seed,
                                   progress=options.progress)
-    predict_seconds = time.perf_counter() - started - fit_seconds
+    if widening is not None:
+        summaries = widen(summaries, widening, levels)
+    predict_seconds = time.perf_counter() - started
 
     result = panel.merge(summaries.drop_vars("value"), join="left")
     result = flags.assign(result, **dataclasses.asdict(options.rules))
     if not observed_unchanged(panel, result):  # a guard on our own code, never expected
         raise GapbandError("internal error: an observed value changed during the fill")
-    diagnostics = fitted.diagnostics
+    diagnostics = fitted.fit.diagnostics
     result.attrs.update(
-        provenance(spec, spec_label, options, levels, fitted.method, diagnostics)
+        provenance(fitted.spec, fitted.spec_label, options, levels, fitted.fit.method,
+                   diagnostics)
     )
+    calibration_record = None if widening is None else widening.record(levels)
+    if calibration_record is not None:
+        result.attrs["gapband_calibration"] = json.dumps(calibration_record)
     summary = {
         "source": panel.attrs.get("source"),
         "input_sha256": panel.attrs.get("input_sha256"),
-        "method": fitted.method,
-        "approximate": fitted.approximate,
-        "spec": spec_label,
+        "method": fitted.fit.method,
+        "approximate": fitted.fit.approximate,
+        "spec": fitted.spec_label,
         "seed": options.seed,
         "levels": list(levels),
         "flag_rules": dataclasses.asdict(options.rules),
+        "calibration": calibration_record,
         "capture": capture_before_after(result),
         "flags": flags.flag_counts(result),
         "diagnostics": diagnostics,
         "timings": {
-            **fitted.timings,
-            "fit_total_s": round(fit_seconds, 2),
+            **fitted.fit.timings,
+            "fit_total_s": round(fitted.seconds, 2),
             "predict_s": round(predict_seconds, 2),
         },
         "versions": versions(),
     }
     return result, summary
+
+
+@dataclass(frozen=True)
+class Fitted:
+    """A fit of a Panel's fittable series, with the spec it used and its run time."""
+
+    fit: Fit
+    panel: xr.Dataset
+    spec: ModelSpec
+    spec_label: str
+    seconds: float
+
+
+def fit_panel(
+    panel: xr.Dataset,
+    *,
+    model: str | Path | ModelSpec | None = None,
+    transform: str | None = None,
+    options: FillOptions | None = None,
+) -> Fitted:
+    """Fit the model to the series of a Panel with enough observations.
+
+    The fitting half of :func:`fill`, shared with :mod:`gapband.holdout`;
+    ``Fitted.panel`` holds the series that were fitted, in the Panel's order.
+
+    Raises
+    ------
+    InputError
+        Nothing observed, or no series with enough observations.
+    SpecError
+        A bad spec.
+    """
+    from gapband import inference  # PyMC is imported only when a fit runs
+
+    options = options or FillOptions()
+    spec, spec_label = resolve_spec(panel, model, transform)
+    to_fit = fittable(panel, options.rules.min_observed)
+    log.info(
+        "model: %s; method: %s; %d of %d series fitted",
+        spec_label, options.method, to_fit.sizes["series"], panel.sizes["series"],
+    )
+    started = time.perf_counter()
+    fitted = inference.fit(
+        to_fit, spec, method=options.method, draws=options.draws, tune=options.tune,
+        chains=options.chains, seed=options.seed, progress=options.progress,
+    )
+    return Fitted(fitted, to_fit, spec, spec_label, time.perf_counter() - started)
 
 
 def fittable(panel: xr.Dataset, min_observed: int) -> xr.Dataset:
@@ -287,3 +348,118 @@ def observed_unchanged(panel: xr.Dataset, result: xr.Dataset) -> bool:
     after = result["filled"].transpose("series", "time").values
     seen = ~np.isnan(before)
     return bool(np.array_equal(before[seen].view("int64"), after[seen].view("int64")))
+
+
+@dataclass(frozen=True)
+class Calibration:
+    """Widening factors per interval level, read from a ``holdout.json``."""
+
+    path: str
+    sha256: str
+    method: str
+    scheme: str
+    factors: dict[str, float | None]
+
+    def check(self, method: str, levels: tuple[float, ...]) -> None:
+        """Refuse a fill these factors were not derived for (another method, a missing level).
+
+        Raises
+        ------
+        UsageError
+            The method differs, or a level has no factor in the file.
+        """
+        if method != self.method:
+            raise UsageError(
+                f"calibration file {self.path!r} was made with --method {self.method}; its "
+                f"factors say nothing about {method} intervals: run gapband holdout with "
+                f"--method {method}, or fill with --method {self.method}"
+            )
+        for level in levels:
+            if self.factors.get(level_key(level)) is None:
+                known = [k for k, v in self.factors.items() if v is not None]
+                raise UsageError(
+                    f"calibration file {self.path!r} has no widening factor for the "
+                    f"{level:g} % level (it has {', '.join(known) or 'none'}); fill with "
+                    "--levels among those, or rerun gapband holdout with this level (and "
+                    "enough hidden cells for it)"
+                )
+
+    def record(self, levels: tuple[float, ...]) -> dict:
+        """What the outputs say about the widening applied (JSON-ready)."""
+        return {
+            "file": self.path,
+            "sha256": self.sha256,
+            "method": self.method,
+            "scheme": self.scheme,
+            "factors": {level_key(lv): self.factors[level_key(lv)] for lv in levels},
+        }
+
+
+def read_calibration(path: str | Path) -> Calibration:
+    """Read the widening factors of a ``holdout.json`` written by ``gapband holdout``.
+
+    Raises
+    ------
+    InputError
+        The file cannot be read, is not JSON, is not a gapband holdout file
+        of this version, or holds a factor that is not a positive number.
+    """
+    path = Path(path)
+    try:
+        raw = path.read_bytes()
+    except OSError as exc:
+        raise InputError(f"cannot read calibration file {str(path)!r}: {exc.strerror}") from exc
+    try:
+        data = json.loads(raw.decode("utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise InputError(f"calibration file {str(path)!r} is not JSON ({exc}); give the "
+                         "holdout.json written by gapband holdout") from exc
+    if not isinstance(data, dict) or data.get("format") != CALIBRATION_FORMAT:
+        raise InputError(f"calibration file {str(path)!r} is not a gapband holdout file "
+                         f"(no \"format\": \"{CALIBRATION_FORMAT}\"); give the holdout.json "
+                         "written by gapband holdout")
+    if data.get("format_version") != CALIBRATION_VERSION:
+        raise InputError(f"calibration file {str(path)!r} has format_version "
+                         f"{data.get('format_version')!r}; this gapband reads version "
+                         f"{CALIBRATION_VERSION}: rerun gapband holdout")
+    try:
+        method, scheme = data["settings"]["method"], data["settings"]["scheme"]
+        factors = dict(data["widening"]["factors"])
+    except (KeyError, TypeError) as exc:
+        raise InputError(f"calibration file {str(path)!r} lacks {exc}; rerun gapband "
+                         "holdout") from exc
+    for key, factor in factors.items():
+        ok = factor is None or (isinstance(factor, int | float) and not isinstance(factor, bool)
+                                and np.isfinite(factor) and factor > 0)
+        if not ok:
+            raise InputError(f"calibration file {str(path)!r}: the factor of level {key} is "
+                             f"{factor!r}, not a positive number; rerun gapband holdout")
+    return Calibration(str(path), hashlib.sha256(raw).hexdigest(), method, scheme, factors)
+
+
+def widen(summaries: xr.Dataset, calibration: Calibration,
+          levels: tuple[float, ...]) -> xr.Dataset:
+    """Scale each interval's half-widths around the predictive median by its level's factor.
+
+    ``lower = median - c (median - lower)``, ``upper = median + c (upper -
+    median)``. Intervals are then nested again where different factors
+    crossed them: each level's bounds are taken at least as wide as those of
+    the levels below it. Observed cells (NaN bounds) stay NaN; ``fill_mean``,
+    ``fill_median`` and ``fill_sd`` are unchanged.
+    """
+    out = summaries.copy()
+    median = summaries["fill_median"]
+    inner: tuple[xr.DataArray, xr.DataArray] | None = None
+    for level in sorted(levels):
+        factor = calibration.factors[level_key(level)]
+        names = [f"{side}_{level_key(level).replace('.', '_')}" for side in ("lower", "upper")]
+        lower = median - factor * (median - summaries[names[0]])
+        upper = median + factor * (summaries[names[1]] - median)
+        if inner is not None:
+            lower, upper = np.fmin(lower, inner[0]), np.fmax(upper, inner[1])
+        note = f"widened by factor {factor:.6g} around the median ({calibration.path})"
+        for name, bound in zip(names, (lower, upper), strict=True):
+            out[name] = bound.where(summaries[name].notnull())
+            out[name].attrs = {**summaries[name].attrs, "comment": note}
+        inner = (lower, upper)
+    return out

@@ -46,7 +46,11 @@ of the number of series when ``own_ar`` is on.
 
 from __future__ import annotations
 
+import multiprocessing
+import os
+import queue
 import time
+from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -571,6 +575,7 @@ def sample(
     tune: int = 1000,
     chains: int = 2,
     seed: int = 0,
+    cores: int | None = None,
     progress: bool = False,
 ) -> tuple[xr.Dataset, dict, dict]:
     """Draw from the posterior of the gapband model by block Gibbs.
@@ -591,7 +596,10 @@ def sample(
         Kept sweeps per chain, burn-in sweeps per chain, chains.
     seed : int
         Each chain's generator is spawned from ``numpy.random.SeedSequence(seed)``;
-        the same seed gives the same draws.
+        the same seed gives the same draws, however many cores run them.
+    cores : int, optional
+        Chains run at once, each in its own process (default: as many as
+        there are chains and CPUs); 1 runs them one after another here.
     progress : bool
         Show a progress bar (sweeps done, time remaining) on stderr.
 
@@ -601,52 +609,148 @@ def sample(
         Dims (chain, draw, ...) with the names and dims of the PyMC model's
         posterior (``loading``, ``trend_innovation``, ``level``, ``trend``,
         ``seasonal_coef``, ``ar_pacf``, ``ar_coef``, ``ar``, ``short_loading``,
-        ``own_rho``, ``own``, ``own_unit``, ``noise``, as the spec has them).
+        ``own_rho``, ``own``, ``noise``, as the spec has them). Own paths
+        are kept where they are needed, not whole: ``own_gap`` (chain, draw,
+        gap), float32, their value at each missing cell (flat index
+        ``series × T + time`` in coordinate ``gap``), and ``own_mean``
+        (chain, series, time), their posterior mean per chain.
     diagnostics : dict
         ``sampler``, ``divergences`` (always 0), ``acceptance`` of the
-        Metropolis-Hastings steps.
+        Metropolis-Hastings steps, ``cores``.
     timings : dict
-        Seconds of burn-in (``tune``) and kept sweeps (``sample``).
+        Seconds of burn-in (``tune``) and kept sweeps (``sample``), summed
+        over chains, and ``wall`` for the whole run.
     """
+    cores = max(1, min(chains, cores or os.cpu_count() or 1))
     streams = np.random.SeedSequence(seed).spawn(chains)
-    kept: list[dict[str, np.ndarray]] = []
-    accepted: dict[str, int] = {}
-    proposed: dict[str, int] = {}
-    timings = {"tune": 0.0, "sample": 0.0}
+    job = _Job(z, fourier, spec, rank, ar_factors, draws, tune)
+    started = time.perf_counter()
     bar = Progress(
-        TextColumn("gibbs chain {task.fields[chain]}/" + str(chains)), BarColumn(),
+        TextColumn(f"gibbs, {chains} chains on {cores} core{'s' * (cores > 1)}"), BarColumn(),
         MofNCompleteColumn(), TimeRemainingColumn(),
         console=Console(stderr=True), disable=not progress, transient=True,
     )
-    task = bar.add_task("sweeps", total=chains * (tune + draws), chain=1)
     with bar:
-        for chain, stream in enumerate(streams):
-            bar.update(task, chain=chain + 1)
-            sampler = _Sampler(z, fourier, spec, rank, ar_factors, np.random.default_rng(stream))
-            state = sampler.initial()
-            store = _Store(draws, z.shape, rank, ar_factors, fourier.shape[1], spec)
-            for phase, sweeps in (("tune", tune), ("sample", draws)):
-                start = time.perf_counter()
-                for i in range(sweeps):
-                    sampler.sweep(state, tuning=phase == "tune")
-                    if phase == "sample":
-                        store.keep(i, state)
-                    bar.advance(task)
-                timings[phase] += time.perf_counter() - start
-            kept.append(store.arrays)
-            for name in sampler.accepted:
-                accepted[name] = accepted.get(name, 0) + sampler.accepted[name]
-                proposed[name] = proposed.get(name, 0) + sampler.proposed[name]
-    posterior = _dataset(kept, coords, rank, ar_factors, fourier.shape[1], spec)
+        task = bar.add_task("sweeps", total=chains * (tune + draws))
+        if cores == 1:
+            results = [job.run(stream, lambda done: bar.advance(task, done))
+                       for stream in streams]
+        else:
+            results = _run_in_processes(job, streams, cores, lambda done: bar.advance(task, done))
+    accepted: dict[str, int] = {}
+    proposed: dict[str, int] = {}
+    timings = {"tune": 0.0, "sample": 0.0}
+    for result in results:
+        for name in result.accepted:
+            accepted[name] = accepted.get(name, 0) + result.accepted[name]
+            proposed[name] = proposed.get(name, 0) + result.proposed[name]
+        for phase in timings:
+            timings[phase] += result.seconds[phase]
+    timings["wall"] = time.perf_counter() - started
+    posterior = _dataset(results, coords, job.gap_cells)
     acceptance = {name: accepted[name] / proposed[name] for name in accepted if proposed[name]}
-    diagnostics = {"sampler": "gibbs", "divergences": 0, "acceptance": acceptance}
+    diagnostics = {"sampler": "gibbs", "divergences": 0, "acceptance": acceptance,
+                   "cores": cores}
     return posterior, diagnostics, timings
+
+
+@dataclass
+class _Chain:
+    """What one chain returns: kept draws, own-path mean, MH counts, seconds."""
+
+    arrays: dict[str, np.ndarray]
+    own_mean: np.ndarray | None
+    accepted: dict[str, int]
+    proposed: dict[str, int]
+    seconds: dict[str, float]
+
+
+@dataclass
+class _Job:
+    """Everything a chain needs; picklable, so a chain can run in another process."""
+
+    z: np.ndarray
+    fourier: np.ndarray
+    spec: ModelSpec
+    rank: int
+    ar_factors: int
+    draws: int
+    tune: int
+
+    @property
+    def gap_cells(self) -> np.ndarray:
+        return np.flatnonzero(np.isnan(self.z).ravel())
+
+    def run(self, stream: np.random.SeedSequence, advance) -> _Chain:
+        """Burn in, then keep ``draws`` sweeps; ``advance(k)`` reports k more sweeps done."""
+        sampler = _Sampler(self.z, self.fourier, self.spec, self.rank, self.ar_factors,
+                           np.random.default_rng(stream))
+        state = sampler.initial()
+        store = _Store(self.draws, self.z.shape, self.rank, self.ar_factors,
+                       self.fourier.shape[1], self.spec, self.gap_cells)
+        seconds = {}
+        for phase, sweeps in (("tune", self.tune), ("sample", self.draws)):
+            start = last = time.perf_counter()
+            pending = 0
+            for i in range(sweeps):
+                sampler.sweep(state, tuning=phase == "tune")
+                if phase == "sample":
+                    store.keep(i, state)
+                pending += 1
+                if time.perf_counter() - last > _REPORT_EVERY:
+                    advance(pending)
+                    pending, last = 0, time.perf_counter()
+            advance(pending)
+            seconds[phase] = time.perf_counter() - start
+        return _Chain(store.arrays, store.own_mean(), sampler.accepted, sampler.proposed,
+                      seconds)
+
+
+#: Posterior variables of the own paths that only this sampler keeps (see :func:`sample`).
+OWN_KEPT = ("own_gap", "own_mean")
+
+#: Seconds between progress reports of a chain.
+_REPORT_EVERY = 0.25
+
+#: Thread caps for the chain processes, so two chains on two cores do not
+#: also start a BLAS thread pool each.
+_ONE_THREAD = {name: "1" for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS",
+                                      "MKL_NUM_THREADS")}
+
+
+def _run_in_processes(job: _Job, streams, cores: int, advance) -> list[_Chain]:
+    """Run one chain per stream on ``cores`` fresh processes; results in stream order."""
+    context = multiprocessing.get_context("spawn")
+    saved = {name: os.environ.get(name) for name in _ONE_THREAD}
+    os.environ.update(_ONE_THREAD)  # inherited by the processes started below
+    try:
+        with context.Manager() as manager, ProcessPoolExecutor(cores, context) as pool:
+            reports = manager.Queue()
+            futures = [pool.submit(_run_chain, job, stream, reports) for stream in streams]
+            while not all(future.done() for future in futures):
+                try:
+                    advance(reports.get(timeout=0.1))
+                except queue.Empty:
+                    pass
+            return [future.result() for future in futures]
+    finally:
+        for name, value in saved.items():
+            if value is None:
+                os.environ.pop(name, None)
+            else:
+                os.environ[name] = value
+
+
+def _run_chain(job: _Job, stream: np.random.SeedSequence, reports) -> _Chain:
+    """A chain in a worker process; progress goes back through ``reports``."""
+    return job.run(stream, reports.put)
 
 
 class _Store:
     """Kept draws of one chain, in the PyMC model's variable names."""
 
-    def __init__(self, draws, shape, rank, ar_factors, harmonics, spec: ModelSpec):
+    def __init__(self, draws, shape, rank, ar_factors, harmonics, spec: ModelSpec,
+                 gap_cells: np.ndarray):
         n_series, n_time = shape
         sizes = {"loading": (n_series, rank), "trend_innovation": (rank,), "level": (rank,),
                  "trend": (rank, n_time), "noise": (n_series,)}
@@ -657,9 +761,14 @@ class _Store:
                       "ar_coef": (ar_factors, spec.ar_order),
                       "ar": (ar_factors, n_time), "short_loading": (n_series, ar_factors)}
         if spec.own_ar:
-            sizes |= {"own_rho": (n_series,), "own": (n_series,),
-                      "own_unit": (n_series, n_time)}
+            sizes |= {"own_rho": (n_series,), "own": (n_series,)}
         self.arrays = {name: np.empty((draws, *size)) for name, size in sizes.items()}
+        self.gap_cells = gap_cells
+        self.own_sum = None
+        if spec.own_ar:
+            self.arrays["own_gap"] = np.empty((draws, gap_cells.size), dtype="float32")
+            self.own_sum = np.zeros(shape)
+        self.kept = 0
 
     def keep(self, i: int, s: _State) -> None:
         values = {"loading": s.loading, "trend_innovation": s.innovation,
@@ -668,10 +777,15 @@ class _Store:
                   "short_loading": s.short_loading, "own_rho": s.own_rho, "own": s.own_sd}
         if "ar_coef" in self.arrays:
             values["ar_coef"] = np.array([_levinson(k)[0][-1] for k in s.pacf])
-        if "own_unit" in self.arrays:
-            values["own_unit"] = s.own_path / np.maximum(s.own_sd, np.sqrt(_TINY))[:, None]
+        if self.own_sum is not None:
+            values["own_gap"] = s.own_path.ravel()[self.gap_cells]
+            self.own_sum += s.own_path
         for name, array in self.arrays.items():
             array[i] = values[name]
+        self.kept += 1
+
+    def own_mean(self) -> np.ndarray | None:
+        return None if self.own_sum is None else self.own_sum / max(self.kept, 1)
 
 
 _DIMS = {
@@ -679,20 +793,24 @@ _DIMS = {
     "trend": ("factor", "time"), "seasonal_coef": ("factor", "harmonic"),
     "ar_pacf": ("short_factor", "lag"), "ar_coef": ("short_factor", "lag"),
     "ar": ("short_factor", "time"), "short_loading": ("series", "short_factor"),
-    "own_rho": ("series",), "own": ("series",), "own_unit": ("series", "time"),
+    "own_rho": ("series",), "own": ("series",), "own_gap": ("gap",),
     "noise": ("series",),
 }
 
 
-def _dataset(kept, coords, rank, ar_factors, harmonics, spec) -> xr.Dataset:
+def _dataset(chains: list[_Chain], coords: dict, gap_cells: np.ndarray) -> xr.Dataset:
     data = {
-        name: (("chain", "draw", *_DIMS[name]), np.stack([chain[name] for chain in kept]))
-        for name in kept[0]
+        name: (("chain", "draw", *_DIMS[name]), np.stack([chain.arrays[name] for chain in chains]))
+        for name in chains[0].arrays
     }
-    n_chain, n_draw = len(kept), next(iter(kept[0].values())).shape[0]
+    if chains[0].own_mean is not None:
+        data["own_mean"] = (("chain", "series", "time"),
+                            np.stack([chain.own_mean for chain in chains]))
+    n_draw = next(iter(chains[0].arrays.values())).shape[0]
     used = {dim for dims in _DIMS.values() for dim in dims if dim in coords}
-    return xr.Dataset(data, coords={"chain": np.arange(n_chain), "draw": np.arange(n_draw)}
-                      | {dim: coords[dim] for dim in used})
+    extra = {"gap": gap_cells} if "own_gap" in data else {}
+    return xr.Dataset(data, coords={"chain": np.arange(len(chains)), "draw": np.arange(n_draw)}
+                      | extra | {dim: coords[dim] for dim in used | {"series", "time"}})
 
 
 def _add(ab: np.ndarray, rows: np.ndarray, cols: np.ndarray, values) -> None:

@@ -148,7 +148,8 @@ def fit(
     timings |= run_timings
     start = time.perf_counter()
     keep = [v.name for v in built.model.free_RVs + built.model.deterministics
-            if v.name not in RAW_VARIABLES]
+            if v.name not in RAW_VARIABLES and v.name in posterior]
+    keep += [name for name in gibbs.OWN_KEPT if name in posterior]
     posterior = posterior[keep]
     posterior = posterior.drop_vars([c for c in posterior.coords if c not in posterior.dims])
     diagnostics = _identified_diagnostics(posterior, built, panel, seed) | diagnostics
@@ -263,7 +264,10 @@ def _identified_diagnostics(posterior: xr.Dataset, built: BuiltModel, panel: xr.
     missing = np.flatnonzero(panel["value"].isnull().values.ravel())
     pool = missing if missing.size else built.observed
     cells = np.sort(rng.choice(pool, size=min(DIAGNOSTIC_CELLS, pool.size), replace=False))
-    means = mean_at(draw_arrays(posterior, built), cells, panel.sizes["time"])
+    arrays = draw_arrays(posterior, built)
+    if not missing.size:  # own paths kept at missing cells only: check the rest
+        arrays.pop("own_gap", None)
+    means = mean_at(arrays, cells, panel.sizes["time"])
     checked = xr.Dataset(
         {"cell_mean": (("chain", "draw", "cell"), means.reshape(n_chain, n_draw, -1))}
     )

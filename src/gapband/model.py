@@ -209,7 +209,10 @@ def draw_arrays(posterior: xr.Dataset, built: BuiltModel) -> dict[str, np.ndarra
 
     Returns the arrays :func:`mean_at` needs: ``loading`` (S, N, r), ``factor``
     (S, r, T, trend plus season), ``short_loading`` (S, N, r_b), ``ar`` (S, r_b, T),
-    ``own`` (S, N) sd, ``own_rho`` (S, N) and ``own_unit`` (S, N, T) when present, ``noise`` (S, N).
+    ``own`` (S, N) sd, ``own_rho`` (S, N), ``noise`` (S, N), and the own paths
+    as the fit kept them: ``own_unit`` (S, N, T), the unit paths everywhere
+    (NUTS, ADVI), or ``own_gap`` (S, M), the paths at the M missing cells
+    ``gap_cells`` (Gibbs).
     """
 
     def take(name: str) -> np.ndarray:
@@ -223,8 +226,11 @@ def draw_arrays(posterior: xr.Dataset, built: BuiltModel) -> dict[str, np.ndarra
     if built.ar_factors:
         arrays |= {"short_loading": take("short_loading"), "ar": take("ar")}
     if built.spec.own_ar:
-        arrays |= {"own": take("own"), "own_rho": take("own_rho"),
-                   "own_unit": take("own_unit")}
+        arrays |= {"own": take("own"), "own_rho": take("own_rho")}
+        if "own_gap" in posterior:
+            arrays |= {"own_gap": take("own_gap"), "gap_cells": posterior["gap"].values}
+        else:
+            arrays["own_unit"] = take("own_unit")
     return arrays
 
 
@@ -237,9 +243,20 @@ def mean_at(arrays: dict[str, np.ndarray], cells: np.ndarray, n_time: int) -> np
     out = np.einsum("sck,skc->sc", arrays["loading"][:, n, :], arrays["factor"][:, :, t])
     if "ar" in arrays:
         out += np.einsum("sck,skc->sc", arrays["short_loading"][:, n, :], arrays["ar"][:, :, t])
-    if "own" in arrays:
+    if "own_unit" in arrays:
         out += arrays["own"][:, n] * arrays["own_unit"][:, n, t]
+    elif "own_gap" in arrays:
+        out += arrays["own_gap"][:, _gap_positions(arrays["gap_cells"], cells)]
     return out
+
+
+def _gap_positions(gap_cells: np.ndarray, cells: np.ndarray) -> np.ndarray:
+    """Positions of ``cells`` among the kept missing cells (ValueError if one is not)."""
+    where = np.minimum(np.searchsorted(gap_cells, cells), max(gap_cells.size - 1, 0))
+    if gap_cells.size == 0 or np.any(gap_cells[where] != cells):
+        raise ValueError("own paths were kept at the missing cells only; "
+                         "these cells include an observed one")
+    return where
 
 
 def _standardisation(transformed: np.ndarray, standardise: bool) -> tuple[np.ndarray, np.ndarray]:

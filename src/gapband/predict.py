@@ -123,7 +123,7 @@ class Predictive:
         arrays = draw_arrays(fit.posterior, fit.built)
         mean, scale = fit.built.mean.values, fit.built.scale.values
         rng = np.random.default_rng(seed)
-        if "own" in arrays and fit.spec.noise == "normal":
+        if "own_unit" in arrays and fit.spec.noise == "normal":
             z = (forward(panel["value"].values, fit.built.transform) - mean[:, None]) / scale[
                 :, None
             ]
@@ -161,7 +161,8 @@ def condition_own(arrays: dict[str, np.ndarray], z: np.ndarray,
     everywhere = np.arange(n_time)
     for n in range(n_series):
         cells = n * n_time + everywhere
-        without_own = mean_at({k: v for k, v in arrays.items() if k != "own"}, cells, n_time)
+        without_own = mean_at({k: v for k, v in arrays.items() if k != "own_unit"}, cells,
+                              n_time)
         resid = z[n][None, :] - without_own
         sd = np.maximum(arrays["own"][:, n], 1e-12)
         path = draw_ar1_given_noisy(resid, arrays["own_rho"][:, n], sd, arrays["noise"][:, n], rng)
@@ -201,10 +202,12 @@ def components(fit: Fit) -> xr.Dataset:
         average("snj,sjt->nt", post["short_loading"].values, post["ar"].values)
         if built.ar_factors else np.zeros(shape)
     )
-    parts["own"] = (
-        average("sn,snt->nt", post["own"].values, post["own_unit"].values)
-        if built.spec.own_ar else np.zeros(shape)
-    )
+    if "own_mean" in fit.posterior:  # kept as a per-chain mean by the Gibbs sampler
+        parts["own"] = scale * fit.posterior["own_mean"].mean("chain").values
+    elif built.spec.own_ar:
+        parts["own"] = average("sn,snt->nt", post["own"].values, post["own_unit"].values)
+    else:
+        parts["own"] = np.zeros(shape)
     coords = {"series": built.scale["series"].values, "time": post["time"].values}
     return xr.Dataset(
         {name: (("series", "time"), value, {"long_name": f"posterior mean {name} contribution "
