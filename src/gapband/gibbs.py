@@ -49,6 +49,7 @@ from __future__ import annotations
 import multiprocessing
 import os
 import queue
+import sys
 import time
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
@@ -65,6 +66,7 @@ from rich.progress import (
 )
 from scipy.linalg import cholesky_banded
 from scipy.stats import geninvgauss
+from threadpoolctl import threadpool_limits
 
 from gapband.gmrf import ar1_band, draw_banded, draw_bordered, draw_factored, solve_lower
 from gapband.spec import ModelSpec
@@ -712,38 +714,32 @@ OWN_KEPT = ("own_gap", "own_mean")
 #: Seconds between progress reports of a chain.
 _REPORT_EVERY = 0.25
 
-#: Thread caps for the chain processes, so two chains on two cores do not
-#: also start a BLAS thread pool each.
-_ONE_THREAD = {name: "1" for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS",
-                                      "MKL_NUM_THREADS")}
-
-
 def _run_in_processes(job: _Job, streams, cores: int, advance) -> list[_Chain]:
-    """Run one chain per stream on ``cores`` fresh processes; results in stream order."""
-    context = multiprocessing.get_context("spawn")
-    saved = {name: os.environ.get(name) for name in _ONE_THREAD}
-    os.environ.update(_ONE_THREAD)  # inherited by the processes started below
-    try:
-        with context.Manager() as manager, ProcessPoolExecutor(cores, context) as pool:
-            reports = manager.Queue()
-            futures = [pool.submit(_run_chain, job, stream, reports) for stream in streams]
-            while not all(future.done() for future in futures):
-                try:
-                    advance(reports.get(timeout=0.1))
-                except queue.Empty:
-                    pass
-            return [future.result() for future in futures]
-    finally:
-        for name, value in saved.items():
-            if value is None:
-                os.environ.pop(name, None)
-            else:
-                os.environ[name] = value
+    """Run one chain per stream on ``cores`` worker processes; results in stream order.
+
+    Workers are forked on Linux (no re-import of the caller's script, so
+    scripts need no ``if __name__ == "__main__"`` guard) and spawned
+    elsewhere, where forking a process with threads is unsafe.
+    """
+    method = "fork" if sys.platform == "linux" else "spawn"
+    context = multiprocessing.get_context(method)
+    with context.Manager() as manager, ProcessPoolExecutor(cores, context) as pool:
+        reports = manager.Queue()
+        futures = [pool.submit(_run_chain, job, stream, reports) for stream in streams]
+        while not all(future.done() for future in futures):
+            try:
+                advance(reports.get(timeout=0.1))
+            except queue.Empty:
+                pass
+        while not reports.empty():
+            advance(reports.get())
+        return [future.result() for future in futures]
 
 
 def _run_chain(job: _Job, stream: np.random.SeedSequence, reports) -> _Chain:
-    """A chain in a worker process; progress goes back through ``reports``."""
-    return job.run(stream, reports.put)
+    """A chain in a worker process, on one BLAS thread (the chains share the cores)."""
+    with threadpool_limits(1):
+        return job.run(stream, reports.put)
 
 
 class _Store:
