@@ -414,43 +414,43 @@ class _Sampler:
         s.trend = x[:, :r].T.copy()
         s.ar = x[:, r:].T.copy()
 
+    def _regression(self, s: _State) -> tuple[np.ndarray, np.ndarray | None]:
+        """What the loadings regress: the target (N, T) and the design paths (k, T).
+
+        The design is the trend plus season of each factor (unless the
+        loadings are fixed) and the short-term AR paths; None when nothing
+        is free, the target then being the data minus the whole shared part.
+        """
+        fixed = self.spec.fixed.loading is not None
+        paths = [s.ar] if self.ar_factors else []
+        if fixed:
+            target = self.z - s.loading @ (s.trend + self._season(s))
+        else:
+            target = self.z
+            paths.insert(0, s.trend + self._season(s))
+        if not paths:
+            return target, None
+        return target, np.concatenate(paths, axis=0)
+
     def _loadings(self, s: _State, factor: np.ndarray | None = None) -> None:
         """Each series' loadings: Bayesian linear regression on the paths, batched.
 
-        With own AR(1) paths, these are integrated out: the regression error
-        of series n is then the AR(1) path plus noise, with covariance K_n,
-        and ``K⁻¹ = W - W(Q + W)⁻¹W`` (Woodbury) needs only tridiagonal solves
-        (``factor``: the Cholesky factor of Q + W, when already known).
+        With own AR(1) paths, these are integrated out (see
+        :func:`_loading_posterior`); ``factor`` is the Cholesky factor of
+        Q + W when already known.
         """
-        fixed = self.spec.fixed.loading is not None
-        if fixed and not self.ar_factors:
+        target, design = self._regression(s)
+        if design is None:
             return
-        target = self.z.copy()
-        paths = [s.ar] if self.ar_factors else []
-        if fixed:
-            target -= s.loading @ (s.trend + self._season(s))
-        else:
-            paths.insert(0, s.trend + self._season(s))
-        design = np.concatenate(paths, axis=0)  # (k, T)
         weight = self._cell_weight(s)
-        precision = np.einsum("nt,kt,lt->nkl", weight, design, design, optimize=True)
-        rhs = np.einsum("nt,kt->nk", weight * target, design, optimize=True)
-        if self.spec.own_ar:
-            n_series, n_time = self.z.shape
-            weighted = np.concatenate([weight[:, :, None] * design.T[None],
-                                       (weight * target)[:, :, None]], axis=2)  # (N, T, k + 1)
-            if factor is None:
-                factor = cholesky_banded(ar1_band(s.own_sd, s.own_rho, weight), lower=True,
-                                         check_finite=False)
-            # With Q + W = L·Lᵀ: XᵀW(Q + W)⁻¹WX = VᵀV for V = L⁻¹WX.
-            solved = solve_lower(factor, weighted.reshape(n_series * n_time, -1)).reshape(
-                weighted.shape)
-            correction = np.einsum("ntk,ntl->nkl", solved[:, :, :-1], solved, optimize=True)
-            precision -= correction[:, :, :-1]
-            rhs -= correction[:, :, -1]
-        precision += np.eye(design.shape[0]) / self.spec.priors.loading**2
+        if self.spec.own_ar and factor is None:
+            factor = cholesky_banded(ar1_band(s.own_sd, s.own_rho, weight), lower=True,
+                                     check_finite=False)
+        precision, rhs = _loading_posterior(target, design, weight,
+                                            factor if self.spec.own_ar else None,
+                                            self.spec.priors.loading)
         drawn = _draw_dense(precision, rhs, self.rng)
-        if not fixed:
+        if self.spec.fixed.loading is None:
             s.loading = drawn[:, : self.rank].copy()
         if self.ar_factors:
             s.short_loading = drawn[:, -self.ar_factors:].copy()
@@ -458,24 +458,35 @@ class _Sampler:
     def _own_collapsed(self, s: _State, tuning: bool) -> np.ndarray:
         """Own sd, own AR(1) coefficient and noise sd with the own path integrated out.
 
-        Given everything but the own path, the residual of each series is an
-        AR(1) path plus noise, whose marginal density is exact and cheap
-        (:func:`_own_marginal`); a random-walk Metropolis step on (log sd,
-        logit rho, log noise sd) under it, followed by a fresh draw of the
-        path, moves along the sd/noise trade-off that a path-given-scale
-        update would cross only slowly (collapsed Gibbs; Liu, JASA 1994).
+        Given the shared paths, each series is a regression on them (the
+        loadings) plus an AR(1) path plus noise; with the loadings' Gaussian
+        prior and the path both integrated out its density is exact and cheap
+        (:func:`_own_marginal`, :func:`_loading_posterior`). A random-walk
+        Metropolis step on (log sd, logit rho, log noise sd) under it,
+        followed by fresh draws of the loadings and the path, moves along the
+        trade-offs between own persistence, noise and the shared part that
+        updates conditioned on each other cross only slowly (collapsed
+        Gibbs; Liu, JASA 1994).
         Returns the Cholesky factor of the own paths' precision given the
         data at the new values (see :func:`_own_marginal`).
         """
         spec, rng = self.spec, self.rng
-        resid = self.z - self._mean(s, own=False)
+        target, design = self._regression(s)
         base = self.seen * s.weight
         free = np.array([spec.fixed.own is None, True, spec.fixed.noise is None])
         current = np.column_stack([np.log(s.own_sd), _logit(s.own_rho), np.log(s.noise)])
 
         def log_post(theta):
             sd, rho, noise = np.exp(theta[:, 0]), _expit(theta[:, 1]), np.exp(theta[:, 2])
-            value, factor = _own_marginal(resid, base, sd, rho, noise)
+            value, factor = _own_marginal(target, base, sd, rho, noise)
+            if design is not None:  # the loadings integrated out too
+                precision, rhs = _loading_posterior(target, design, base / noise[:, None] ** 2,
+                                                    factor, spec.priors.loading)
+                chol = np.linalg.cholesky(precision)
+                half = np.linalg.solve(chol, rhs[..., None])[..., 0]
+                value += (0.5 * (half**2).sum(axis=1)
+                          - np.log(np.diagonal(chol, axis1=1, axis2=2)).sum(axis=1)
+                          - design.shape[0] * np.log(spec.priors.loading))
             # Priors in the transformed coordinates (with their Jacobians):
             # HalfNormal on the sds, Uniform(0, 1) on rho.
             value += np.log(rho) + np.log1p(-rho)
@@ -812,6 +823,52 @@ def _dataset(chains: list[_Chain], coords: dict, gap_cells: np.ndarray) -> xr.Da
 def _add(ab: np.ndarray, rows: np.ndarray, cols: np.ndarray, values) -> None:
     """Add ``values`` at the lower entries (rows, cols) of a lower banded matrix."""
     ab[rows - cols, cols] += values
+
+
+def _loading_posterior(target: np.ndarray, design: np.ndarray, weight: np.ndarray,
+                       factor: np.ndarray | None, prior: float) -> tuple[np.ndarray, np.ndarray]:
+    """Canonical parameters of each series' loadings given the paths, own path integrated out.
+
+    Parameters
+    ----------
+    target : ndarray, shape (N, T)
+    design : ndarray, shape (k, T)
+        The regressors, shared by all series.
+    weight : ndarray, shape (N, T)
+        Observation precision (0 where unobserved).
+    factor : ndarray, shape (2, N·T), or None
+        Lower banded Cholesky factor of Q + W (own AR(1) precision plus
+        ``weight``), stacked over series; None without own paths.
+    prior : float
+        Prior sd of every loading (Normal(0, prior²)).
+
+    Returns
+    -------
+    precision : ndarray, shape (N, k, k)
+        ``XᵀK⁻¹X + I/prior²``.
+    rhs : ndarray, shape (N, k)
+        ``XᵀK⁻¹y``; the posterior is N(precision⁻¹·rhs, precision⁻¹).
+
+    Notes
+    -----
+    The regression error is the own path plus noise with covariance K, and
+    ``K⁻¹ = W - W(Q + W)⁻¹W`` (Woodbury): with Q + W = L·Lᵀ,
+    ``XᵀK⁻¹X = XᵀWX - VᵀV`` for V = L⁻¹WX, so only banded solves are needed
+    (Bayesian linear regression: Gelman et al., Bayesian Data Analysis, 3rd
+    ed., 2013, section 14.2).
+    """
+    precision = np.einsum("nt,kt,lt->nkl", weight, design, design, optimize=True)
+    rhs = np.einsum("nt,kt->nk", weight * target, design, optimize=True)
+    if factor is not None:
+        n_series, n_time = target.shape
+        weighted = np.concatenate([weight[:, :, None] * design.T[None],
+                                   (weight * target)[:, :, None]], axis=2)  # (N, T, k + 1)
+        solved = solve_lower(factor, weighted.reshape(n_series * n_time, -1)).reshape(
+            weighted.shape)
+        correction = np.einsum("ntk,ntl->nkl", solved[:, :, :-1], solved, optimize=True)
+        precision -= correction[:, :, :-1]
+        rhs -= correction[:, :, -1]
+    return precision + np.eye(design.shape[0]) / prior**2, rhs
 
 
 def _own_marginal(resid: np.ndarray, base: np.ndarray, sd: np.ndarray, rho: np.ndarray,
