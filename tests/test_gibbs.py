@@ -140,11 +140,22 @@ def test_own_marginal_matches_the_dense_normal_density():
     base = np.ones((2, n_time))
     base[1, [3, 4, 17]] = 0.0
     sd, rho, noise = np.array([0.9, 0.4]), np.array([0.8, 0.3]), np.array([0.5, 0.2])
-    got, _ = gibbs._own_marginal(resid, base, sd, rho, noise)
+    got, _, _ = gibbs._own_marginal(resid, base, sd, rho, noise)
     lags = np.abs(np.subtract.outer(np.arange(n_time), np.arange(n_time)))
     for n in range(2):
         seen = base[n] > 0
         cov = (sd[n] ** 2 * rho[n] ** lags + noise[n] ** 2 * np.eye(n_time))[np.ix_(seen, seen)]
+        expected = stats.multivariate_normal(np.zeros(seen.sum()), cov).logpdf(resid[n, seen])
+        assert got[n] == pytest.approx(expected, rel=1e-9)
+
+    # With regressors X whose coefficients ~ N(0, s²I) integrated out too, the
+    # covariance gains s²·XXᵀ (same source, computed densely).
+    design, prior = rng.normal(size=(2, n_time)), 0.7
+    got, _, _ = gibbs._own_marginal(resid, base, sd, rho, noise, design, prior)
+    for n in range(2):
+        seen = base[n] > 0
+        cov = (sd[n] ** 2 * rho[n] ** lags + noise[n] ** 2 * np.eye(n_time)
+               + prior**2 * design.T @ design)[np.ix_(seen, seen)]
         expected = stats.multivariate_normal(np.zeros(seen.sum()), cov).logpdf(resid[n, seen])
         assert got[n] == pytest.approx(expected, rel=1e-9)
 

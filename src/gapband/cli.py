@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import functools
 import logging
+import math
 import sys
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -189,16 +190,20 @@ def fill_settings(kw: dict, **rules) -> tuple[Path | None, str | None, FillOptio
               help="Flag fills in gaps longer than DURATION (e.g. '72h') uncertain.")
 @click.option("--table", type=click.Choice(["csv", "parquet"]), default="csv",
               show_default=True, help="Format of the long table.")
+@click.option("--keep-draws", type=click.IntRange(0), default=200, show_default=True,
+              metavar="N", help="Joint predictive draws of the filled cells kept in filled.nc "
+              "for gapband stats (0: none).")
 @click.option("--overwrite", is_flag=True, help="Replace existing outputs in --out.")
 @handle_errors
 def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width, max_gap, table,
-         overwrite, **kw):
+         keep_draws, overwrite, **kw):
     """Fill every missing cell of INPUT with a credible interval and a flag."""
     from gapband import filling
     from gapband.outputs import prepare_dir
 
     model, transform, options = fill_settings(kw, level=flag_level, max_width=max_width,
                                               max_rel_width=max_rel_width, max_gap=max_gap)
+    options.keep_draws = keep_draws
     prepare_dir(out_dir, ["filled.nc", f"filled.{table}", "summary.json"], overwrite)
     panel = gapband.read(input_path, **kw)
     result, summary = filling.fill(panel, model=model, transform=transform, options=options,
@@ -294,6 +299,107 @@ def scores_table(report: dict) -> Table:
 
 def _number(value: float | None, spec: str) -> str:
     return "-" if value is None else format(value, spec)
+
+
+@cli.command()
+@click.argument("fill_dir", metavar="DIR", type=click.Path(path_type=Path))
+@click.option("--period", type=click.Choice(["day", "month", "year"]), required=True,
+              help="Calendar period of the statistics.")
+@click.option("--mean", is_flag=True, help="The period mean (the default statistic).")
+@click.option("--percentile", "percentiles", type=float, multiple=True, metavar="P",
+              help="The P-th percentile of the period's values, P in (0, 100] (repeatable).")
+@click.option("--exceed", "thresholds", multiple=True, metavar="VALUE",
+              help="Count values above VALUE (data units) in each period (repeatable).")
+@click.option("--over", type=click.Choice(["step", "day-mean", "day-max"]), default="day-mean",
+              show_default=True, help="What --exceed counts: time steps, or days by their "
+              "mean or maximum.")
+@click.option("--min-capture", default="75", show_default=True, metavar="PCT|A/B",
+              help="Validity rule on observed values: a period (and, for day aggregates, a "
+              "day) needs this % of its steps observed; '18/24' also works.")
+@click.option("--level", type=float, default=90, show_default=True,
+              help="Central credible interval level (%).")
+@click.option("--out", "out_dir", type=click.Path(path_type=Path),
+              help="Folder for stats-<period>.csv and .json (default: DIR).")
+@click.option("--overwrite", is_flag=True, help="Replace existing stats files.")
+@handle_errors
+def stats(fill_dir, period, mean, percentiles, thresholds, over, min_capture, level, out_dir,
+          overwrite):
+    """Period statistics with credible intervals from the fill in DIR."""
+    from gapband import stats as period_stats
+    from gapband.outputs import open_fill, prepare_dir
+
+    out_dir = out_dir or fill_dir
+    prepare_dir(out_dir, [f"stats-{period}.csv", f"stats-{period}.json"], overwrite)
+    result, _ = open_fill(fill_dir)
+    computed = period_stats.period_stats(
+        result, period=period, mean=mean, percentiles=percentiles, exceed=thresholds,
+        over=over, min_capture=min_capture, level=level)
+    console.print(stats_table(computed))
+    rule = period_stats.rule_text(computed.attrs["min_capture_pct"], period)
+    console.print(f"[dim]validity: {escape(rule)}[/]", highlight=False)
+    for path in period_stats.write(computed, out_dir, overwrite=True):
+        console.print(f"wrote {path}", highlight=False)
+
+
+def stats_table(computed) -> Table:
+    """Period statistics as a terminal table (first rows when long)."""
+    from gapband.stats import table
+
+    rows = table(computed)
+    level = f"{computed.attrs['level']:g}"
+    shown = rows.head(STATS_ROWS_SHOWN)
+    table_ = Table(
+        title=f"{escape(str(computed.attrs['source']))}: statistics per {computed.attrs['period']}"
+        f", {computed.attrs['draws']} joint draws",
+        caption=f"estimate: median over draws with a {level} % credible interval; measured: "
+        "observed values only"
+        + (f"; first {STATS_ROWS_SHOWN} of {len(rows)} rows (all in the files)"
+           if len(rows) > STATS_ROWS_SHOWN else ""),
+    )
+    for header in ("series", "period", "statistic", "measured", "valid", "estimate",
+                   f"{level} % interval", "capture %", "filled share"):
+        table_.add_column(header, justify="left" if header in ("series", "period", "statistic")
+                          else "right", no_wrap=True)
+    for r in shown.itertuples(index=False):
+        table_.add_row(
+            escape(r.series), str(r.period_start)[:10], escape(r.statistic),
+            _number(_finite(r.measured), ".4g"), "yes" if r.valid else "[red]no[/]",
+            _number(_finite(r.estimate), ".4g"),
+            f"{_number(_finite(getattr(r, 'lower_' + level.replace('.', '_'))), '.4g')} – "
+            f"{_number(_finite(getattr(r, 'upper_' + level.replace('.', '_'))), '.4g')}",
+            f"{r.capture_pct:.1f}", _number(_finite(r.filled_share), ".2f"),
+        )
+    return table_
+
+
+#: Rows of period statistics printed on the terminal; the files hold them all.
+STATS_ROWS_SHOWN = 40
+
+
+def _finite(value: float) -> float | None:
+    return None if math.isnan(value) else value
+
+
+@cli.command()
+@click.argument("fill_dir", metavar="DIR", type=click.Path(path_type=Path))
+@click.option("--out", "out_path", type=click.Path(path_type=Path),
+              help="The HTML file (default: DIR/report.html).")
+@click.option("--holdout", "holdout_path", type=click.Path(path_type=Path),
+              metavar="HOLDOUT_JSON", help="Holdout evidence (default: DIR/holdout.json when "
+              "present).")
+@click.option("--period", type=click.Choice(["day", "month", "year"]),
+              help="Period of the statistics section (default: by record length).")
+@click.option("--capture-threshold", type=click.FloatRange(0, 100), default=90.0,
+              show_default=True, metavar="PCT", help="Data capture a series should reach.")
+@click.option("--overwrite", is_flag=True, help="Replace an existing report.")
+@handle_errors
+def report(fill_dir, out_path, holdout_path, period, capture_threshold, overwrite):
+    """Write a self-contained HTML report of the fill in DIR."""
+    from gapband.report import write
+
+    path = write(fill_dir, out_path, overwrite=overwrite, holdout=holdout_path, period=period,
+                 capture_threshold=capture_threshold)
+    console.print(f"wrote {path}", highlight=False)
 
 
 @cli.command()

@@ -35,6 +35,11 @@ log = logging.getLogger(__name__)
 
 Method = Literal["gibbs", "nuts", "advi"]
 DEFAULT_LEVELS: tuple[float, ...] = (50, 80, 90, 95)
+#: Joint predictive draws of the missing cells ``fill`` keeps for period statistics.
+DEFAULT_KEEP_DRAWS = 200
+#: Missing cells whose joint draws are computed at a time (bounds working memory).
+DRAW_CHUNK_CELLS = 4096
+COMPONENTS: tuple[str, ...] = ("trend", "seasonal", "short_term", "own")
 #: What ``gapband holdout`` writes into ``holdout.json`` and ``--calibration`` expects.
 CALIBRATION_FORMAT = "gapband holdout"
 CALIBRATION_VERSION = 1
@@ -64,6 +69,7 @@ class FillOptions:
     seed: int = 0
     rules: FlagRules = field(default_factory=FlagRules)
     progress: bool = True
+    keep_draws: int = DEFAULT_KEEP_DRAWS
 
 
 def resolve_spec(
@@ -143,8 +149,11 @@ def fill(
     -------
     result : Dataset
         The Panel plus ``filled``, ``fill_mean``, ``fill_median``,
-        ``fill_sd``, ``lower_<L>``/``upper_<L>`` and ``fill_flag``, with
-        provenance attributes (``gapband_calibration`` when widened).
+        ``fill_sd``, ``lower_<L>``/``upper_<L>`` and ``fill_flag``, the
+        component contributions ``component_<name>`` and ``component_offset``
+        (:func:`component_means`), and unless ``options.keep_draws`` is 0 the
+        joint draws ``fill_draws`` (:func:`joint_draws`), with provenance
+        attributes (``gapband_calibration`` when widened).
     summary : dict
         JSON-ready: capture before and after, flag counts, diagnostics,
         timings, the calibration applied (or None).
@@ -162,6 +171,10 @@ def fill(
 
     options = options or FillOptions()
     levels = check_levels(tuple(options.levels))
+    keep = options.keep_draws
+    if isinstance(keep, bool) or not isinstance(keep, int | np.integer) or keep < 0:
+        raise UsageError(f"keep_draws = {keep!r} must be a whole number, 0 or more "
+                         "(--keep-draws; 0 keeps none)")
     if options.rules.level not in levels and (
         options.rules.max_width is not None or options.rules.max_rel_width is not None
     ):
@@ -179,10 +192,13 @@ def fill(
                                   progress=options.progress)
     if widening is not None:
         summaries = widen(summaries, widening, levels)
-    predict_seconds = time.perf_counter() - started
 
     result = panel.merge(summaries.drop_vars("value"), join="left")
     result = flags.assign(result, **dataclasses.asdict(options.rules))
+    result = result.merge(component_means(fitted, panel))
+    if options.keep_draws:
+        result = result.merge(joint_draws(fitted, result, options.keep_draws, options.seed))
+    predict_seconds = time.perf_counter() - started
     if not observed_unchanged(panel, result):  # a guard on our own code, never expected
         raise GapbandError("internal error: an observed value changed during the fill")
     diagnostics = fitted.fit.diagnostics
@@ -278,6 +294,109 @@ def fittable(panel: xr.Dataset, min_observed: int) -> xr.Dataset:
             "observations; lower --min-observed or supply more data"
         )
     return panel.sel(series=keep)
+
+
+def component_means(fitted: Fitted, panel: xr.Dataset) -> xr.Dataset:
+    """Posterior-mean contribution of each model component, on the whole Panel.
+
+    In transformed units (after the spec's transform, before the series mean
+    is added back; :func:`gapband.predict.components`):
+    ``component_offset + component_trend + component_seasonal +
+    component_short_term + component_own`` is the posterior mean of the
+    transformed value without noise. Series that were not fitted are NaN.
+
+    Returns
+    -------
+    Dataset
+        ``component_<name>`` dims ("series", "time") for each name in
+        :data:`COMPONENTS`, and ``component_offset`` dims ("series",).
+    """
+    from gapband.predict import components  # PyMC is imported only when a fit runs
+
+    transform = fitted.fit.built.transform
+    parts = components(fitted.fit)
+    if transform == "none":
+        unit_note = {"units": panel["value"].attrs["units"]} if "units" in panel["value"].attrs \
+            else {}
+        meaning = "data units, relative to the series mean"
+    else:
+        unit_note = {}
+        meaning = f"{transform}-transformed units, relative to the series mean of the transform"
+    out = xr.Dataset(coords={"series": panel["series"], "time": panel["time"]})
+    for name in COMPONENTS:
+        out[f"component_{name}"] = parts[name].reindex(series=panel["series"]).astype("float64")
+        out[f"component_{name}"].attrs = {
+            "long_name": f"posterior mean {name.replace('_', '-')} contribution",
+            "comment": f"{meaning}; not a filled value", "transform": transform, **unit_note,
+        }
+    offset = xr.DataArray(fitted.fit.built.mean.values, coords={"series": parts["series"]},
+                          dims="series").reindex(series=panel["series"])
+    out["component_offset"] = offset
+    out["component_offset"].attrs = {
+        "long_name": "series mean the component contributions are added to",
+        "comment": f"{meaning.split(',')[0]}; offset plus the four contributions is the "
+                   "posterior mean of the transformed value without noise",
+        "transform": transform, **unit_note,
+    }
+    return out
+
+
+def joint_draws(fitted: Fitted, result: xr.Dataset, n_draws: int, seed: int) -> xr.Dataset:
+    """Joint posterior predictive draws of every filled cell, for period statistics.
+
+    ``n_draws`` posterior draws, evenly spaced over all chains (all of them
+    when there are fewer), each give one predictive value per filled cell:
+    row d across cells is one joint draw, so a complete series can be put
+    together per draw with the observed cells fixed. Computed
+    :data:`DRAW_CHUNK_CELLS` cells at a time; stored as float32. Widening by
+    ``--calibration`` is not applied (it is defined per cell and level).
+
+    Returns
+    -------
+    Dataset
+        ``fill_draws`` dims ("fill_draw", "missing_cell"), float32, data
+        units; ``missing_cell`` holds the flat index series × n_time + time
+        of each cell in the result (CF compression by gathering:
+        ``compress = "series time"``).
+    """
+    from gapband.predict import Predictive  # PyMC is imported only when a fit runs
+
+    flag = result["fill_flag"].transpose("series", "time").values
+    n_time = result.sizes["time"]
+    gathered = np.flatnonzero(np.isin(flag.ravel(), (flags.FILLED, flags.FILLED_UNCERTAIN)))
+    series, steps = np.divmod(gathered, n_time)
+    rows = pd.Index(fitted.panel["series"].values).get_indexer(result["series"].values)
+    cells = rows[series] * n_time + steps
+    thinned = dataclasses.replace(fitted.fit, posterior=_thin(fitted.fit.posterior, n_draws))
+    predictive = Predictive.of(thinned, fitted.panel, seed=seed)
+    kept = thinned.posterior.sizes["draw"]
+    draws = np.empty((kept, cells.size), dtype="float32")
+    for begin in range(0, cells.size, DRAW_CHUNK_CELLS):
+        chunk = slice(begin, begin + DRAW_CHUNK_CELLS)
+        draws[:, chunk] = predictive.draws(cells[chunk])
+    units = result["value"].attrs.get("units")
+    return xr.Dataset(
+        {"fill_draws": (("fill_draw", "missing_cell"), draws, {
+            "long_name": "joint posterior predictive draws of the filled cells",
+            "comment": "row d across all cells is one joint draw; observed cells are not "
+                       "stored (they are fixed); estimates, not measurements",
+            **({"units": units} if units is not None else {})})},
+        coords={"missing_cell": ("missing_cell", gathered.astype("int64"), {
+            "long_name": "flat index of the filled cell: series index × time steps + time index",
+            "compress": "series time"})},
+    )
+
+
+def _thin(posterior: xr.Dataset, n_draws: int) -> xr.Dataset:
+    """Keep ``n_draws`` posterior draws evenly spaced over all chains, as one chain."""
+    drawn = [name for name, var in posterior.data_vars.items()
+             if {"chain", "draw"} <= set(var.dims)]
+    stacked = posterior[drawn].stack(sample=("chain", "draw"))
+    total = stacked.sizes["sample"]
+    keep = np.unique(np.linspace(0, total - 1, min(n_draws, total)).round().astype("int64"))
+    thinned = (stacked.isel(sample=keep).drop_vars(["sample", "chain", "draw"])
+               .rename(sample="draw").expand_dims(chain=1))
+    return thinned.transpose("chain", "draw", ...)
 
 
 def capture_before_after(result: xr.Dataset) -> dict:

@@ -64,11 +64,10 @@ from rich.progress import (
     TextColumn,
     TimeRemainingColumn,
 )
-from scipy.linalg import cholesky_banded
 from scipy.stats import geninvgauss
 from threadpoolctl import threadpool_limits
 
-from gapband.gmrf import ar1_band, draw_banded, draw_bordered, draw_factored, solve_lower
+from gapband.gmrf import StackedAr1, draw_banded, draw_bordered
 from gapband.spec import ModelSpec
 
 #: Floors that keep variances and sums of squares strictly positive.
@@ -83,7 +82,7 @@ _PROPOSAL_WIDEN = 1.25
 _SCALE_STEPS = 5
 
 #: Collapsed Metropolis steps on each series' own sd, coefficient and noise sd per sweep.
-_OWN_STEPS = 2
+_OWN_STEPS = 1
 
 
 @dataclass
@@ -163,8 +162,9 @@ class _Sampler:
         """
         # The factor of every series' own-path precision at the new own
         # scales, shared by the next two blocks (their weights are unchanged).
-        factor = self._own_collapsed(s, tuning) if self.spec.own_ar else None
-        self._loadings(s, factor)
+        factor, loading_posterior = (self._own_collapsed(s, tuning) if self.spec.own_ar
+                                     else (None, None))
+        self._loadings(s, factor, loading_posterior)
         self._paths(s, factor)
         if self.spec.noise == "student_t":
             self._weights(s)
@@ -254,7 +254,7 @@ class _Sampler:
         """Precision of each cell's observation (0 where unobserved), (N, T)."""
         return self.seen * s.weight / np.maximum(s.noise, _TINY)[:, None] ** 2
 
-    def _paths(self, s: _State, factor: np.ndarray | None = None) -> None:
+    def _paths(self, s: _State, factor: StackedAr1 | None = None) -> None:
         """The shared paths, and the own paths when the spec has them.
 
         With own paths, three exact draws in turn: the own paths given the
@@ -273,18 +273,16 @@ class _Sampler:
         if self.spec.own_ar:
             self._shared_given_signal(s)
 
-    def _own_paths(self, s: _State, factor: np.ndarray | None = None) -> None:
+    def _own_paths(self, s: _State, factor: StackedAr1 | None = None) -> None:
         """Every series' own AR(1) path given the rest: one stacked tridiagonal draw.
 
-        ``factor`` is the Cholesky factor of the paths' precision when already known.
+        ``factor`` is the factorised precision of the paths when already known.
         """
         weight = self._cell_weight(s)
         if factor is None:
-            factor = cholesky_banded(ar1_band(s.own_sd, s.own_rho, weight), lower=True,
-                                     check_finite=False)
+            factor = StackedAr1.of(s.own_sd, s.own_rho, weight)
         resid = self.z - self._mean(s, own=False)
-        s.own_path = draw_factored(factor, (weight * resid).ravel(), self.rng).reshape(
-            self.z.shape)
+        s.own_path = factor.draw(weight * resid, self.rng)
 
     def _shared_prior(self, s: _State) -> tuple[np.ndarray, int]:
         """Prior precision of the shared state, lower banded, and the state size d.
@@ -432,30 +430,30 @@ class _Sampler:
             return target, None
         return target, np.concatenate(paths, axis=0)
 
-    def _loadings(self, s: _State, factor: np.ndarray | None = None) -> None:
+    def _loadings(self, s: _State, factor: StackedAr1 | None = None,
+                  posterior: tuple[np.ndarray, np.ndarray] | None = None) -> None:
         """Each series' loadings: Bayesian linear regression on the paths, batched.
 
         With own AR(1) paths, these are integrated out (see
-        :func:`_loading_posterior`); ``factor`` is the Cholesky factor of
-        Q + W when already known.
+        :func:`_loading_posterior`); ``factor`` is their factorised precision
+        and ``posterior`` the regression's canonical parameters, when known.
         """
         target, design = self._regression(s)
         if design is None:
             return
-        weight = self._cell_weight(s)
-        if self.spec.own_ar and factor is None:
-            factor = cholesky_banded(ar1_band(s.own_sd, s.own_rho, weight), lower=True,
-                                     check_finite=False)
-        precision, rhs = _loading_posterior(target, design, weight,
-                                            factor if self.spec.own_ar else None,
-                                            self.spec.priors.loading)
-        drawn = _draw_dense(precision, rhs, self.rng)
+        if posterior is None:
+            weight = self._cell_weight(s)
+            if self.spec.own_ar and factor is None:
+                factor = StackedAr1.of(s.own_sd, s.own_rho, weight)
+            posterior = _loading_posterior(target, design, weight, factor,
+                                           self.spec.priors.loading)
+        drawn = _draw_dense(*posterior, self.rng)
         if self.spec.fixed.loading is None:
             s.loading = drawn[:, : self.rank].copy()
         if self.ar_factors:
             s.short_loading = drawn[:, -self.ar_factors:].copy()
 
-    def _own_collapsed(self, s: _State, tuning: bool) -> np.ndarray:
+    def _own_collapsed(self, s: _State, tuning: bool) -> tuple[StackedAr1, tuple | None]:
         """Own sd, own AR(1) coefficient and noise sd with the own path integrated out.
 
         Given the shared paths, each series is a regression on them (the
@@ -467,8 +465,9 @@ class _Sampler:
         trade-offs between own persistence, noise and the shared part that
         updates conditioned on each other cross only slowly (collapsed
         Gibbs; Liu, JASA 1994).
-        Returns the Cholesky factor of the own paths' precision given the
-        data at the new values (see :func:`_own_marginal`).
+        Returns the factorised precision of the own paths given the data and
+        the loadings' regression (canonical parameters, or None when nothing
+        is regressed) at the new values, for the next blocks.
         """
         spec, rng = self.spec, self.rng
         target, design = self._regression(s)
@@ -478,15 +477,8 @@ class _Sampler:
 
         def log_post(theta):
             sd, rho, noise = np.exp(theta[:, 0]), _expit(theta[:, 1]), np.exp(theta[:, 2])
-            value, factor = _own_marginal(target, base, sd, rho, noise)
-            if design is not None:  # the loadings integrated out too
-                precision, rhs = _loading_posterior(target, design, base / noise[:, None] ** 2,
-                                                    factor, spec.priors.loading)
-                chol = np.linalg.cholesky(precision)
-                half = np.linalg.solve(chol, rhs[..., None])[..., 0]
-                value += (0.5 * (half**2).sum(axis=1)
-                          - np.log(np.diagonal(chol, axis1=1, axis2=2)).sum(axis=1)
-                          - design.shape[0] * np.log(spec.priors.loading))
+            value, factor, regression = _own_marginal(target, base, sd, rho, noise, design,
+                                                      spec.priors.loading)
             # Priors in the transformed coordinates (with their Jacobians):
             # HalfNormal on the sds, Uniform(0, 1) on rho.
             value += np.log(rho) + np.log1p(-rho)
@@ -494,27 +486,32 @@ class _Sampler:
                 value += theta[:, 0] - 0.5 * (sd / spec.priors.own) ** 2
             if free[2]:
                 value += theta[:, 2] - 0.5 * (noise / spec.priors.noise) ** 2
-            return value, factor.reshape(2, *self.z.shape)
+            return value, factor, regression
 
-        now, factor = log_post(current)
+        now, factor, regression = log_post(current)
         for _ in range(_OWN_STEPS):
             shock = np.einsum("nij,nj->ni", self.own_shape, rng.standard_normal(current.shape))
             proposal = current + self.own_step[:, None] * free * shock
             inside = np.abs(proposal[:, 1]) < 30.0  # rho within (0, 1) in floating point
-            then, proposed = log_post(np.where(inside[:, None], proposal, current))
+            then, proposed, proposed_regression = log_post(
+                np.where(inside[:, None], proposal, current))
             then = np.where(inside, then, -np.inf)
             accept = np.log(rng.random(now.size)) < then - now
             current = np.where(accept[:, None], proposal, current)
             now = np.where(accept, then, now)
-            # The rows of the stacked factor are each series' own: keep the accepted ones.
-            factor = np.where(accept[None, :, None], proposed, factor)
+            # Each series' rows are its own: keep the accepted ones.
+            factor = factor.where(accept, proposed)
+            if regression is not None:
+                regression = tuple(np.where(accept.reshape(-1, *[1] * (new.ndim - 1)), new, old)
+                                   for old, new in zip(regression, proposed_regression,
+                                                       strict=True))
             self.accepted["own"] += int(accept.sum())
             self.proposed["own"] += accept.size
             if tuning:
                 self._adapt_own(current, accept, free)
         s.own_sd, s.own_rho, s.noise = (np.exp(current[:, 0]), _expit(current[:, 1]),
                                         np.exp(current[:, 2]))
-        return factor.reshape(2, -1)
+        return factor, regression
 
     def _adapt_own(self, current: np.ndarray, accept: np.ndarray, free: np.ndarray) -> None:
         """Adapt the own-scale proposal during burn-in.
@@ -826,7 +823,8 @@ def _add(ab: np.ndarray, rows: np.ndarray, cols: np.ndarray, values) -> None:
 
 
 def _loading_posterior(target: np.ndarray, design: np.ndarray, weight: np.ndarray,
-                       factor: np.ndarray | None, prior: float) -> tuple[np.ndarray, np.ndarray]:
+                       factor: StackedAr1 | None, prior: float,
+                       solved: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Canonical parameters of each series' loadings given the paths, own path integrated out.
 
     Parameters
@@ -836,11 +834,13 @@ def _loading_posterior(target: np.ndarray, design: np.ndarray, weight: np.ndarra
         The regressors, shared by all series.
     weight : ndarray, shape (N, T)
         Observation precision (0 where unobserved).
-    factor : ndarray, shape (2, N·T), or None
-        Lower banded Cholesky factor of Q + W (own AR(1) precision plus
-        ``weight``), stacked over series; None without own paths.
+    factor : StackedAr1 or None
+        The factorised Q + W (own AR(1) precision plus ``weight``); None
+        without own paths.
     prior : float
         Prior sd of every loading (Normal(0, prior²)).
+    solved : ndarray, shape (k + 1, N, T), optional
+        ``(Q + W)⁻¹`` applied to :func:`_weighted_columns`, when already known.
 
     Returns
     -------
@@ -852,27 +852,35 @@ def _loading_posterior(target: np.ndarray, design: np.ndarray, weight: np.ndarra
     Notes
     -----
     The regression error is the own path plus noise with covariance K, and
-    ``K⁻¹ = W - W(Q + W)⁻¹W`` (Woodbury): with Q + W = L·Lᵀ,
-    ``XᵀK⁻¹X = XᵀWX - VᵀV`` for V = L⁻¹WX, so only banded solves are needed
-    (Bayesian linear regression: Gelman et al., Bayesian Data Analysis, 3rd
-    ed., 2013, section 14.2).
+    ``K⁻¹ = W - W(Q + W)⁻¹W`` (Woodbury), so only tridiagonal solves are
+    needed (Bayesian linear regression: Gelman et al., Bayesian Data
+    Analysis, 3rd ed., 2013, section 14.2).
     """
     precision = np.einsum("nt,kt,lt->nkl", weight, design, design, optimize=True)
     rhs = np.einsum("nt,kt->nk", weight * target, design, optimize=True)
     if factor is not None:
-        n_series, n_time = target.shape
-        weighted = np.concatenate([weight[:, :, None] * design.T[None],
-                                   (weight * target)[:, :, None]], axis=2)  # (N, T, k + 1)
-        solved = solve_lower(factor, weighted.reshape(n_series * n_time, -1)).reshape(
-            weighted.shape)
-        correction = np.einsum("ntk,ntl->nkl", solved[:, :, :-1], solved, optimize=True)
+        if solved is None:
+            solved = factor.solve(_weighted_columns(target, design, weight))
+        correction = np.einsum("nt,kt,lnt->nkl", weight, design, solved, optimize=True)
         precision -= correction[:, :, :-1]
         rhs -= correction[:, :, -1]
     return precision + np.eye(design.shape[0]) / prior**2, rhs
 
 
+def _weighted_columns(target: np.ndarray, design: np.ndarray | None,
+                      weight: np.ndarray) -> np.ndarray:
+    """W·x for every regressor x, then W·y: shape (k + 1, N, T)."""
+    k = 0 if design is None else design.shape[0]
+    columns = np.empty((k + 1, *target.shape))
+    if k:
+        np.multiply(weight[None], design[:, None, :], out=columns[:k])
+    np.multiply(weight, target, out=columns[k])
+    return columns
+
+
 def _own_marginal(resid: np.ndarray, base: np.ndarray, sd: np.ndarray, rho: np.ndarray,
-                  noise: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+                  noise: np.ndarray, design: np.ndarray | None = None, prior: float = 1.0,
+                  ) -> tuple[np.ndarray, StackedAr1, tuple[np.ndarray, np.ndarray] | None]:
     """Log density of each row's observed residuals: stationary AR(1) path plus noise.
 
     Parameters
@@ -884,35 +892,50 @@ def _own_marginal(resid: np.ndarray, base: np.ndarray, sd: np.ndarray, rho: np.n
         Student-t weight (1 for normal noise) where observed.
     sd, rho, noise : ndarray, shape (N,)
         Marginal sd and coefficient of the path, noise sd.
+    design : ndarray, shape (k, T), optional
+        Regressors whose coefficients (Normal(0, ``prior``²) each) are
+        integrated out as well.
 
     Returns
     -------
     logp : ndarray, shape (N,)
-    factor : ndarray, shape (2, N·T)
-        The lower banded Cholesky factor of Q + W, stacked over rows.
+    factor : StackedAr1
+        The factorised Q + W.
+    regression : tuple or None
+        The coefficients' posterior canonical parameters
+        (:func:`_loading_posterior`), when there is a design.
 
     Notes
     -----
     With path precision Q, observation precision W and b = W·r, the
     marginal log density is ``-r'Wr/2 + b'(Q + W)⁻¹b/2 + (log|W| + log|Q|
     - log|Q + W|)/2 - n/2·log 2π`` (Rue & Held, 2005, section 2.3: the
-    Gaussian integral). All rows share one banded Cholesky factorisation.
+    Gaussian integral). Integrating out coefficients β ~ N(0, s²I) of a
+    regression with posterior precision P and canonical mean c adds
+    ``c'P⁻¹c/2 - log|P|/2 - k·log s`` (the same Gaussian integral).
     """
-    n_series, n_time = resid.shape
+    n_time = resid.shape[1]
     weight = base / noise[:, None] ** 2
-    rhs = weight * resid
-    lower = cholesky_banded(ar1_band(sd, rho, weight), lower=True, check_finite=False)
-    # b'(Q + W)⁻¹b = |L⁻¹b|² with Q + W = L·Lᵀ.
-    half = solve_lower(lower, rhs.ravel()).reshape(n_series, n_time)
+    factor = StackedAr1.of(sd, rho, weight)
+    columns = _weighted_columns(resid, design, weight)
+    solved = factor.solve(columns)
     seen = base > 0
     log_q = -n_time * np.log(np.maximum(sd, _TINY) ** 2) - (n_time - 1) * np.log1p(-rho**2)
     logp = (-0.5 * (weight * resid**2).sum(axis=1)
-            + 0.5 * (half**2).sum(axis=1)
+            + 0.5 * (columns[-1] * solved[-1]).sum(axis=1)
             + 0.5 * np.where(seen, np.log(np.where(seen, weight, 1.0)), 0.0).sum(axis=1)
             + 0.5 * log_q
-            - np.log(lower[0].reshape(n_series, n_time)).sum(axis=1)
+            - 0.5 * factor.log_det()
             - 0.5 * seen.sum(axis=1) * np.log(2.0 * np.pi))
-    return logp, lower
+    if design is None:
+        return logp, factor, None
+    regression = _loading_posterior(resid, design, weight, factor, prior, solved)
+    chol = np.linalg.cholesky(regression[0])
+    half = np.linalg.solve(chol, regression[1][..., None])[..., 0]
+    logp += (0.5 * (half**2).sum(axis=1)
+             - np.log(np.diagonal(chol, axis1=1, axis2=2)).sum(axis=1)
+             - design.shape[0] * np.log(prior))
+    return logp, factor, regression
 
 
 def _walk_logp(path: np.ndarray, step_sd: float, level_sd: float) -> float:

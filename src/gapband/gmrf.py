@@ -9,9 +9,11 @@ its canonical parameterisation).
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 from scipy.linalg import cholesky_banded
-from scipy.linalg.lapack import dtbtrs
+from scipy.linalg.lapack import dpttrf, dpttrs, dtbtrs
 
 #: Smallest innovation variance used, so a path with sd → 0 or ρ → 1 stays
 #: numerically positive definite.
@@ -56,6 +58,59 @@ def ar1_band(sd: np.ndarray, rho: np.ndarray, weight: np.ndarray) -> np.ndarray:
     return ab.reshape(2, -1)
 
 
+@dataclass(frozen=True)
+class StackedAr1:
+    """``Q + W`` of many AR(1) paths seen through noise, factorised once as L·D·Lᵀ.
+
+    Q is each path's stationary AR(1) precision and W the observation
+    precision of its cells; the paths are stacked, so one tridiagonal
+    factorisation (LAPACK dpttrf) serves all of them in O(rows·time), and
+    rows can be swapped between two factorisations (:meth:`where`).
+    """
+
+    diagonal: np.ndarray  # D, shape (rows, time)
+    lower: np.ndarray  # sub-diagonal of the unit lower bidiagonal L, shape (rows, time)
+
+    @classmethod
+    def of(cls, sd: np.ndarray, rho: np.ndarray, weight: np.ndarray) -> StackedAr1:
+        """Factorise for marginal sds and coefficients (rows,) and weights (rows, time)."""
+        ab = ar1_band(sd, rho, weight)
+        diagonal, lower, info = dpttrf(ab[0], ab[1, :-1])
+        if info:
+            raise np.linalg.LinAlgError(f"tridiagonal factorisation failed (info = {info})")
+        return cls(diagonal.reshape(weight.shape), np.append(lower, 0.0).reshape(weight.shape))
+
+    def solve(self, b: np.ndarray) -> np.ndarray:
+        """(Q + W)⁻¹·b for b of shape (rows, time) or (k, rows, time) (k right-hand sides)."""
+        # (k, rows·time) in C order is (rows·time, k) in the Fortran order LAPACK wants.
+        columns = b.reshape(-1, self.diagonal.size).T
+        x, info = dpttrs(self.diagonal.ravel(), self.lower.ravel()[:-1], columns)
+        if info:
+            raise np.linalg.LinAlgError(f"tridiagonal solve failed (info = {info})")
+        return x.T.reshape(b.shape)
+
+    def log_det(self) -> np.ndarray:
+        """log|Q + W| of each row's block, shape (rows,)."""
+        return np.log(self.diagonal).sum(axis=1)
+
+    def draw(self, rhs: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+        """One draw of x ~ N((Q + W)⁻¹·rhs, (Q + W)⁻¹), rhs of shape (rows, time).
+
+        ``x = (Q + W)⁻¹(rhs + L·D^½·z)``: the added term has covariance
+        L·D·Lᵀ = Q + W, so x has covariance (Q + W)⁻¹ (Rue & Held, 2005,
+        section 2.4, with the factorisation in L·D·Lᵀ form).
+        """
+        y = np.sqrt(self.diagonal) * rng.standard_normal(rhs.shape)
+        y[:, 1:] += self.lower[:, :-1] * y[:, :-1]
+        return self.solve(rhs + y)
+
+    def where(self, rows: np.ndarray, other: StackedAr1) -> StackedAr1:
+        """A copy with the blocks of ``rows`` (bool, shape (rows,)) taken from ``other``."""
+        pick = rows[:, None]
+        return StackedAr1(np.where(pick, other.diagonal, self.diagonal),
+                          np.where(pick, other.lower, self.lower))
+
+
 def draw_ar1_given_noisy(
     resid: np.ndarray,
     rho: np.ndarray,
@@ -79,12 +134,12 @@ def draw_ar1_given_noisy(
     -------
     ndarray, shape (rows, time)
         One exact draw of every path from its conditional distribution; all
-        rows share one banded factorisation (no Python loop over rows).
+        rows share one tridiagonal factorisation (no Python loop over rows).
     """
     seen = ~np.isnan(resid)
     weight = seen / np.maximum(noise_sd, np.sqrt(_TINY))[:, None] ** 2
     rhs = np.where(seen, resid, 0.0) * weight
-    return draw_banded(ar1_band(sd, rho, weight), rhs.ravel(), rng).reshape(resid.shape)
+    return StackedAr1.of(sd, rho, weight).draw(rhs, rng)
 
 
 def draw_banded(ab: np.ndarray, rhs: np.ndarray, rng: np.random.Generator) -> np.ndarray:

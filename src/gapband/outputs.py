@@ -1,5 +1,8 @@
 """Writing the fill outputs: ``filled.nc``, the long table and JSON summaries.
 
+:func:`open_fill` reads a fill folder back for ``gapband stats`` and
+``gapband report``.
+
 Every writer goes through :func:`atomic_path`: the file is written under a
 temporary name in the target folder and renamed onto the target only once
 complete, so a crash or an error never leaves a half-written output, and an
@@ -21,13 +24,14 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from gapband.errors import UsageError
+from gapband.errors import InputError, UsageError
 from gapband.flags import FLAG_MEANINGS, interval_levels
 
 CONVENTIONS = "CF-1.10"
 
 _LONG_NAMES = {
     "filled": "observed value, or posterior median where missing",
+    "fill_draws": "joint posterior predictive draws of the filled cells",
     "fill_mean": "posterior predictive mean",
     "fill_median": "posterior predictive median",
     "fill_sd": "posterior predictive standard deviation",
@@ -107,6 +111,42 @@ def write_netcdf(result: xr.Dataset, path: str | os.PathLike) -> Path:
     with atomic_path(path) as tmp:
         ds.to_netcdf(tmp, engine="h5netcdf", encoding=encoding)
     return Path(path)
+
+
+def open_fill(folder: str | os.PathLike) -> tuple[xr.Dataset, dict]:
+    """Read ``filled.nc`` and ``summary.json`` from a folder written by ``gapband fill``.
+
+    Returns
+    -------
+    result : Dataset
+        ``filled.nc``, loaded into memory (the file is closed).
+    summary : dict
+        ``summary.json``.
+
+    Raises
+    ------
+    InputError
+        The folder does not exist, lacks either file, or a file cannot be read.
+    """
+    root = Path(folder)
+    if not root.is_dir():
+        raise InputError(f"{str(root)!r} is not a folder; give the --out folder of a "
+                         "gapband fill run")
+    absent = [name for name in ("filled.nc", "summary.json") if not (root / name).is_file()]
+    if absent:
+        raise InputError(f"{str(root)!r} holds no {' or '.join(absent)}: it is not the output "
+                         "of a fill; run gapband fill INPUT --out " f"{root} first")
+    try:
+        with xr.open_dataset(root / "filled.nc", engine="h5netcdf") as ds:
+            result = ds.load()
+        summary = json.loads((root / "summary.json").read_text(encoding="utf-8"))
+    except (OSError, ValueError) as exc:
+        raise InputError(f"cannot read the fill in {str(root)!r} ({exc}); rerun gapband "
+                         "fill") from exc
+    if "fill_flag" not in result or "value" not in result:
+        raise InputError(f"{str(root / 'filled.nc')!r} is not a gapband fill (no fill_flag); "
+                         "rerun gapband fill")
+    return result, summary
 
 
 def long_table(result: xr.Dataset) -> pd.DataFrame:
