@@ -7,20 +7,21 @@ the same posterior by cycling through exact conditional distributions
 (block Gibbs; Gelfand & Smith, JASA 1990). One sweep:
 
 1. each series' own sd, own AR(1) coefficient and noise sd, with the own
-   path integrated out: the residual of a series given the shared factors is
-   an AR(1) path plus noise, whose density is exact via one banded Cholesky
-   of all series (:func:`_own_marginal`); an adaptive random-walk Metropolis
-   step per series (the Uniform and HalfNormal priors are not conjugate here);
-2. each series' loadings ``L``, ``B``: a Bayesian linear regression on the
-   factor paths, batched over series, with the own path again integrated out
-   (its covariance enters through tridiagonal solves, by Woodbury);
-3. all paths jointly — the trend and short-term AR paths of every factor, the
-   own AR(1) path of every series — with the Fourier coefficients of every
-   factor: a Gaussian Markov random field in time, banded when the state is
-   ordered time first, plus a dense border for the coefficients; drawn
-   exactly (:func:`gapband.gmrf.draw_bordered`). Drawing together what adds
-   up to each observation is what keeps the sampler mixing when the noise
-   is small, as it is in real monitoring data;
+   path and the loadings integrated out: given the shared paths, a series
+   is a regression on them plus an AR(1) path plus noise, whose density is
+   exact via one tridiagonal factorisation of all series
+   (:func:`_own_marginal`); an adaptive random-walk Metropolis step per
+   series (the Uniform and HalfNormal priors are not conjugate here);
+2. each series' loadings ``L``, ``B``: that Bayesian linear regression,
+   batched over series, with the own path integrated out (its covariance
+   enters through tridiagonal solves, by Woodbury);
+3. the paths, in three exact draws: every series' own AR(1) path given the
+   shared paths (one stacked tridiagonal draw); the trend and short-term
+   AR paths of every factor with the Fourier coefficients given the own
+   paths; and the same shared paths given the noise, the own paths
+   following (:meth:`_Sampler._paths`). The shared state is a Gaussian
+   Markov random field in time, banded when ordered time first, with a
+   dense border for the coefficients (:func:`gapband.gmrf.draw_bordered`);
 4. Student-t noise only: one Gamma((ν+1)/2, (ν + r²/σ²)/2) precision weight
    per observed cell (normal scale mixture; Geweke, J. Appl. Econometrics 1993);
 5. noise sd and trend step sd given the paths: with a HalfNormal(c) prior on
@@ -33,15 +34,15 @@ the same posterior by cycling through exact conditional distributions
 7. a group move per factor along the scale the likelihood cannot see
    (loadings × c, path / c), which only the priors decide.
 
-Steps 1 and 2 integrate the own paths out and step 3 draws them, the order a
-partially collapsed Gibbs sampler needs (van Dyk & Park, JASA 2008).
-Metropolis step sizes adapt during burn-in only. Quantities fixed by
-``spec.fixed`` are held at their value. Only observed cells enter the
-likelihood.
+Steps 1 and 2 integrate the own paths (and step 1 the loadings) out and
+steps 2 and 3 draw them, the order a partially collapsed Gibbs sampler
+needs (van Dyk & Park, JASA 2008). Metropolis step sizes adapt during
+burn-in only. Quantities fixed by ``spec.fixed`` are held at their value.
+Only observed cells enter the likelihood.
 
-Cost per sweep is dominated by step 3: O(T·d²·(lags + 1)²) with d = rank +
-AR factors + series (own paths in the state), so it grows with the square
-of the number of series when ``own_ar`` is on.
+Cost per sweep is O(N·T·k²) for N series, T steps and k = rank + AR
+factors, plus O(T·k³·lags²) for the shared paths: linear in the number of
+series. Chains run in parallel processes.
 """
 
 from __future__ import annotations

@@ -7,6 +7,7 @@ model of :mod:`gapband.model`.
 
 from __future__ import annotations
 
+import multiprocessing
 import os
 import time
 from collections.abc import Callable
@@ -97,6 +98,7 @@ def fit(
     seed: int = 0,
     progress: bool = False,
     max_iterations: int = 50_000,
+    cores: int | None = None,
 ) -> Fit:
     """Fit the model of a Panel under a spec.
 
@@ -118,6 +120,9 @@ def fit(
         Show the sampler's progress bar.
     max_iterations : int
         Cap on ADVI iterations when the ELBO has not converged earlier.
+    cores : int, optional
+        Chains run at once (NUTS, Gibbs); default: as many as there are
+        chains and CPUs. 1 runs them one after another in this process.
 
     Returns
     -------
@@ -143,7 +148,7 @@ def fit(
     run = METHODS[method]
     posterior, diagnostics, run_timings = run(
         built, draws=draws, tune=tune, chains=chains, seed=seed, progress=progress,
-        max_iterations=max_iterations,
+        max_iterations=max_iterations, cores=_cores(chains, cores),
     )
     timings |= run_timings
     start = time.perf_counter()
@@ -160,9 +165,19 @@ def fit(
                diagnostics=diagnostics, timings=timings, built=built, spec=spec, seed=seed)
 
 
+def _cores(chains: int, cores: int | None) -> int:
+    """Chains to run at once: ``cores`` or one per chain and CPU; 1 in a daemonic worker.
+
+    A daemonic process (a worker of a process pool or of a Dask cluster)
+    may not start processes of its own, so its chains run in turn.
+    """
+    if multiprocessing.current_process().daemon:
+        return 1
+    return max(1, min(chains, cores or os.cpu_count() or 1))
+
+
 def _nuts(built: BuiltModel, *, draws: int, tune: int, chains: int, seed: int,
-          progress: bool, max_iterations: int) -> tuple[xr.Dataset, dict, dict]:
-    cores = min(chains, os.cpu_count() or 1)
+          progress: bool, max_iterations: int, cores: int) -> tuple[xr.Dataset, dict, dict]:
     timings = {}
     nutpie = _nutpie()
     if nutpie is not None:
@@ -185,7 +200,7 @@ def _nuts(built: BuiltModel, *, draws: int, tune: int, chains: int, seed: int,
                              "sampler": "nutpie" if nutpie else "pymc"}, timings
 
 
-def _advi(built: BuiltModel, *, draws: int, tune: int, chains: int, seed: int,
+def _advi(built: BuiltModel, *, draws: int, tune: int, chains: int, seed: int, cores: int,
           progress: bool, max_iterations: int) -> tuple[xr.Dataset, dict, dict]:
     stop = _ElboConvergence(ELBO_WINDOW, ELBO_LAG, ELBO_TOLERANCE)
     start = time.perf_counter()
@@ -209,11 +224,11 @@ def _advi(built: BuiltModel, *, draws: int, tune: int, chains: int, seed: int,
 
 
 def _gibbs(built: BuiltModel, *, draws: int, tune: int, chains: int, seed: int,
-           progress: bool, max_iterations: int) -> tuple[xr.Dataset, dict, dict]:
+           progress: bool, max_iterations: int, cores: int) -> tuple[xr.Dataset, dict, dict]:
     coords = {name: np.asarray(values) for name, values in built.model.coords.items()}
     return gibbs.sample(built.z, built.fourier.values, built.spec, rank=built.rank,
                         ar_factors=built.ar_factors, coords=coords, draws=draws, tune=tune,
-                        chains=chains, seed=seed, progress=progress)
+                        chains=chains, seed=seed, cores=cores, progress=progress)
 
 
 #: Inference methods by name; each returns (posterior, diagnostics, timings).
