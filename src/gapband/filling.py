@@ -219,6 +219,7 @@ def fill(
         "levels": list(levels),
         "flag_rules": dataclasses.asdict(options.rules),
         "calibration": calibration_record,
+        "joint_draws": int(result.sizes.get("fill_draw", 0)),
         "capture": capture_before_after(result),
         "flags": flags.flag_counts(result),
         "diagnostics": diagnostics,

