@@ -201,6 +201,14 @@ def test_variance_draws_follow_the_gig_conditional():
     norm = integrate.quad(density, 0, np.inf)[0]
     mean = integrate.quad(lambda v: v * density(v), 0, np.inf)[0] / norm
     assert draws.mean() == pytest.approx(mean, rel=0.02)  # about 4 standard errors
+    # Source: scipy.stats.geninvgauss, GIG(p, a, b) as sqrt(b/a)·GIG(p, sqrt(ab)).
+    a, p = 1 / prior**2, (1 - count) / 2
+    reference = stats.geninvgauss(p, np.sqrt(a * squares), scale=np.sqrt(squares / a))
+    assert stats.kstest(draws, reference.cdf).pvalue > 1e-3
+    # A prior far narrower than the data asks for: the scipy fallback takes over.
+    wide = gibbs._gig_variance(np.full(2_000, 500.0), np.full(2_000, 5), 0.05, rng)
+    reference = stats.geninvgauss(-2.0, np.sqrt(500.0) / 0.05, scale=np.sqrt(500.0) * 0.05)
+    assert stats.kstest(wide, reference.cdf).pvalue > 1e-3
 
 
 def test_same_seed_same_draws_names_match_the_pymc_model():
