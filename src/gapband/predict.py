@@ -183,7 +183,10 @@ def components(fit: Fit) -> xr.Dataset:
         Variables ``trend``, ``seasonal``, ``short_term`` and ``own``, dims
         ("series", "time"); a component the spec leaves out is zero.
     """
-    post = fit.posterior.stack(sample=("chain", "draw")).transpose("sample", ...)
+    # Only variables with a draw dimension: stacking would broadcast the rest.
+    drawn = [name for name, var in fit.posterior.data_vars.items()
+             if {"chain", "draw"} <= set(var.dims) and name != "own_gap"]
+    post = fit.posterior[drawn].stack(sample=("chain", "draw")).transpose("sample", ...)
     built = fit.built
     scale = built.scale.values[:, None]
     n_draws = post.sizes["sample"]
