@@ -197,7 +197,7 @@ def test_atomic_path_uses_a_hidden_temporary_in_the_same_folder(tmp_path):
     target = tmp_path / "filled.nc"
     with outputs.atomic_path(target) as tmp:
         assert tmp.parent == tmp_path
-        assert re.fullmatch(r"\.filled\.nc\.tmp-[0-9a-f]+", tmp.name)
+        assert re.fullmatch(r"\.filled\.nc\.tmp-[0-9a-f]+\.nc", tmp.name)
         tmp.write_text("new")
         assert not target.exists()
     assert target.read_text() == "new"

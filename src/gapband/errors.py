@@ -7,6 +7,8 @@ codes: :class:`InputError` and its subclasses to 3, :class:`UsageError` to 2.
 
 from __future__ import annotations
 
+import signal
+
 
 class GapbandError(Exception):
     """Base class of every error gapband raises on purpose."""
@@ -36,8 +38,28 @@ class UsageError(GapbandError):
     """An option or argument has an invalid value."""
 
 
+class MemoryLimitError(UsageError):
+    """A fill would need more memory than the machine has available."""
+
+
 class FitError(GapbandError):
     """A model could not be fitted to the data as given."""
+
+
+class Interrupted(BaseException):
+    """The run was stopped by SIGINT (Ctrl-C) or SIGTERM.
+
+    Raised by the command line's signal handler. A BaseException, like
+    KeyboardInterrupt, so that no ``except Exception`` swallows it on the way
+    out, while the writers' clean-up (which catches BaseException) still runs.
+    """
+
+    def __init__(self, signum: int):
+        super().__init__(signum)
+        self.signum = signum
+
+    def __str__(self) -> str:
+        return f"stopped by {signal.Signals(self.signum).name}"
 
 
 class GapbandWarning(UserWarning):

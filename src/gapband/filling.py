@@ -12,6 +12,7 @@ import dataclasses
 import hashlib
 import json
 import logging
+import os
 import time
 from dataclasses import dataclass, field
 from importlib.metadata import version
@@ -22,7 +23,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from gapband import flags, outputs
+from gapband import flags, outputs, resources
 from gapband.errors import GapbandError, InputError, UsageError
 from gapband.panel import step_of
 from gapband.scores import level_key
@@ -194,6 +195,7 @@ def fill(
         summaries = widen(summaries, widening, levels)
 
     result = panel.merge(summaries.drop_vars("value"), join="left")
+    unusable = int(flags.no_fill(result).sel(series=fitted.panel["series"]).sum())
     result = flags.assign(result, **dataclasses.asdict(options.rules))
     result = result.merge(component_means(fitted, panel))
     if options.keep_draws:
@@ -202,6 +204,11 @@ def fill(
     if not observed_unchanged(panel, result):  # a guard on our own code, never expected
         raise GapbandError("internal error: an observed value changed during the fill")
     diagnostics = fitted.fit.diagnostics
+    if unusable:
+        diagnostics = {**diagnostics, "warnings": [*diagnostics.get("warnings", []), (
+            f"{unusable} missing cells got no finite predictive summary (values "
+            "beyond the float64 range after back-transforming?); they are flagged not_filled. "
+            "Rescale the data (e.g. other units) or check the fit's diagnostics")]}
     result.attrs.update(
         provenance(fitted.spec, fitted.spec_label, options, levels, fitted.fit.method,
                    diagnostics)
@@ -259,15 +266,21 @@ def fit_panel(
     Raises
     ------
     InputError
-        Nothing observed, or no series with enough observations.
+        Nothing observed, no series with enough observations, or values out
+        of float64's reach (:func:`check_magnitudes`).
     SpecError
         A bad spec.
+    MemoryLimitError
+        The fit would need more memory than is available (:func:`check_memory`).
     """
     from gapband import inference  # PyMC is imported only when a fit runs
 
     options = options or FillOptions()
     spec, spec_label = resolve_spec(panel, model, transform)
     to_fit = fittable(panel, options.rules.min_observed)
+    if spec.transform == "none":
+        check_magnitudes(to_fit)
+    check_memory(to_fit, spec, options)
     log.info(
         "model: %s; method: %s; %d of %d series fitted",
         spec_label, options.method, to_fit.sizes["series"], panel.sizes["series"],
@@ -278,6 +291,55 @@ def fit_panel(
         chains=options.chains, seed=options.seed, progress=options.progress,
     )
     return Fitted(fitted, to_fit, spec, spec_label, time.perf_counter() - started)
+
+
+#: Largest and smallest (non-zero) magnitudes a series may hold untransformed:
+#: the standardisation squares deviations from the mean, and float64 squares
+#: overflow above about 1e154 and lose their digits below about 1e-154.
+MAGNITUDE_LIMITS = (1e-150, 1e150)
+
+
+def check_magnitudes(panel: xr.Dataset) -> None:
+    """Refuse series whose values float64 cannot standardise (see :data:`MAGNITUDE_LIMITS`).
+
+    Raises
+    ------
+    InputError
+        Naming the series, the time and the value, and what to do.
+    """
+    tiny, huge = MAGNITUDE_LIMITS
+    values = panel["value"].transpose("series", "time").values
+    size = np.where(np.isnan(values), -np.inf, np.abs(values))
+    largest = size.max(axis=1)
+    for i in np.flatnonzero((largest > huge) | ((largest > 0) & (largest < tiny))):
+        t = int(size[i].argmax())
+        raise InputError(
+            f"{panel.attrs.get('source', 'input')}: series {str(panel['series'].values[i])!r} "
+            f"holds {float(values[i, t])!r} at {pd.Timestamp(panel['time'].values[t])}; values "
+            f"beyond {huge:g} in magnitude, or a series whose values all lie within {tiny:g} of "
+            "zero, are out of reach of the model's float64 arithmetic: rescale the data (give it "
+            "in other units), or use --transform log for positive data"
+        )
+
+
+def check_memory(panel: xr.Dataset, spec: ModelSpec, options: FillOptions) -> None:
+    """Refuse a fit the machine has not the memory for (:mod:`gapband.resources`).
+
+    Raises
+    ------
+    MemoryLimitError
+        The estimate exceeds the available memory; the message gives both
+        and the ways to need less.
+    """
+    n_missing = int(panel["value"].isnull().sum())
+    estimated = resources.estimate(
+        panel.sizes["series"], panel.sizes["time"], n_missing, spec, method=options.method,
+        draws=options.draws, chains=options.chains, cores=os.cpu_count() or 1,
+        keep_draws=options.keep_draws, n_levels=len(options.levels),
+    )
+    log.info("memory estimate: %s", resources.size_text(estimated.total))
+    resources.check(estimated, source=panel.attrs.get("source", "input"), draws=options.draws,
+                    chains=options.chains, keep_draws=options.keep_draws)
 
 
 def fittable(panel: xr.Dataset, min_observed: int) -> xr.Dataset:
@@ -452,14 +514,20 @@ def write_fill(
     table: Literal["csv", "parquet"] = "csv",
     overwrite: bool = False,
 ) -> list[Path]:
-    """Write ``filled.nc``, ``filled.<table>`` and ``summary.json`` into ``out_dir``."""
+    """Write ``filled.nc``, ``filled.<table>`` and ``summary.json`` into ``out_dir``.
+
+    The three are written under temporary names and renamed together at the
+    end (:func:`gapband.outputs.atomic_paths`): an interrupted run leaves the
+    previous three or the new three, never a mixture or a partial file.
+    """
     names = ["filled.nc", f"filled.{table}", "summary.json"]
     out = outputs.prepare_dir(out_dir, names, overwrite)
-    return [
-        outputs.write_netcdf(result, out / names[0]),
-        outputs.write_table(result, out / names[1]),
-        outputs.write_json(summary, out / names[2]),
-    ]
+    targets = [out / name for name in names]
+    with outputs.atomic_paths(targets) as (netcdf, long_table, json_file):
+        outputs.write_netcdf(result, netcdf)
+        outputs.write_table(result, long_table)
+        outputs.write_json(summary, json_file)
+    return targets
 
 
 def observed_unchanged(panel: xr.Dataset, result: xr.Dataset) -> bool:

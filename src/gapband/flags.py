@@ -6,7 +6,8 @@ CF Conventions 1.10, section 3.5), linked from ``value`` and ``filled`` by
 
 - ``0 observed``: the cell holds an observation; ``filled`` copies it bit for bit.
 - ``3 not_filled``: a missing cell of a series with fewer than
-  ``min_observed`` observations, or one the model gave no fill for;
+  ``min_observed`` observations, or one the model gave no usable fill for
+  (a mean, median, sd or interval bound that is NaN or infinite, :func:`no_fill`);
   ``filled`` and every fill summary are NaN there.
 - ``2 filled_uncertain``: a missing cell whose interval at ``level`` is wider
   than ``max_width`` (data units) or than ``max_rel_width`` times the series'
@@ -134,7 +135,7 @@ def assign(
     observed = value.notnull()
     missing = ~observed
     too_few = observed.sum("time") < min_observed
-    not_filled = missing & (too_few | result["fill_median"].isnull())
+    not_filled = missing & (too_few | no_fill(result))
 
     uncertain = xr.zeros_like(observed)
     if max_width is not None or max_rel_width is not None:
@@ -173,6 +174,22 @@ def assign(
         "comment": _rules_text(level, max_width, max_rel_width, gap_limit, min_observed),
     }
     return out
+
+
+def no_fill(result: xr.Dataset) -> xr.DataArray:
+    """Missing cells the model gave no usable fill for: a summary that is not finite.
+
+    An overflow or a failed fit can leave NaN or infinite summaries; such a
+    cell is flagged ``not_filled`` rather than handed on as a fill.
+
+    Returns
+    -------
+    DataArray of bool, dims (series, time)
+    """
+    names = [name for name in ("fill_mean", "fill_median", "fill_sd") if name in result]
+    names += [f"{side}_{level}" for level in interval_levels(result) for side in ("lower", "upper")]
+    finite = xr.concat([np.isfinite(result[name]) for name in names], "summary").all("summary")
+    return (result["value"].isnull() & ~finite).transpose("series", "time")
 
 
 def flag_counts(result: xr.Dataset) -> dict:

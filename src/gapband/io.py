@@ -8,6 +8,7 @@ name the file, the line (or row) and the column.
 
 from __future__ import annotations
 
+import gzip
 import hashlib
 import re
 from collections.abc import Sequence
@@ -125,11 +126,12 @@ def read(
         table, attrs, file_units = _netcdf_table(path, options)
     elif path.suffix.lower() == ".parquet":
         frame = _read_parquet(path)
-        (table, attrs), file_units = _frame_table(frame, path, options, "row", 1), None
+        where = np.array([f"row {i + 1}" for i in range(len(frame))], dtype=object)
+        (table, attrs), file_units = _frame_table(frame, where, path, options), None
     elif suffixes.endswith((".csv", ".csv.gz", ".txt", ".tsv")):
-        frame = _read_csv(path)
-        # Line 1 holds the header, so data row i sits on line i + 2.
-        (table, attrs), file_units = _frame_table(frame, path, options, "line", 2), None
+        frame, lines = _read_csv(path)
+        where = np.array([f"line {n}" for n in lines], dtype=object)
+        (table, attrs), file_units = _frame_table(frame, where, path, options), None
     else:
         raise InputError(
             f"{path}: unknown file type {path.suffix!r}; use .csv, .parquet or .nc"
@@ -156,26 +158,71 @@ def _sha256(path: Path) -> str:
     return digest.hexdigest()
 
 
-def _read_csv(path: Path) -> pd.DataFrame:
-    """Every cell as text, so that each one can be judged and located."""
+def _read_csv(path: Path) -> tuple[pd.DataFrame, np.ndarray]:
+    """Every cell as text, and the file line of each row, so each cell can be judged and located.
+
+    Rows whose cells are all blank are left out; a column without a name is
+    dropped when it is blank too (a trailing separator) and refused otherwise.
+    """
     sep = "\t" if ".tsv" in path.suffixes else ","
     for encoding in ("utf-8-sig", "latin-1"):
         try:
-            frame = pd.read_csv(
+            # No header row and no skipped lines: pandas then neither renames
+            # repeated or blank column names nor moves a column into the index,
+            # and row i of the result is line i + 1 of the file.
+            raw = pd.read_csv(
                 path, sep=sep, dtype=str, keep_default_na=False, encoding=encoding,
-                skip_blank_lines=True,
+                header=None, skip_blank_lines=False,
             )
         except UnicodeDecodeError:
             continue
         except pd.errors.EmptyDataError:
-            raise InputError(
-                f"{path.name}: the file is empty; it needs a header and rows"
-            ) from None
+            raise InputError(_empty_csv_message(path)) from None
         except pd.errors.ParserError as err:
             raise InputError(f"{path.name}: not a readable CSV table ({err})") from None
-        frame.columns = [str(c).strip() for c in frame.columns]
-        return frame
-    raise InputError(f"{path.name}: cannot decode the text as UTF-8 or Latin-1")  # pragma: no cover
+        break
+    else:  # pragma: no cover - Latin-1 decodes any byte
+        raise InputError(f"{path.name}: cannot decode the text as UTF-8 or Latin-1")
+    header = [str(c).strip() for c in raw.iloc[0].fillna("")]
+    body = raw.iloc[1:].fillna("")
+    blank = body.apply(lambda column: column.str.strip() == "")
+    kept_rows = ~blank.all(axis=1)
+    body, blank = body[kept_rows], blank[kept_rows]
+    unnamed = [i for i, name in enumerate(header) if name == ""]
+    for i in unnamed:
+        filled = ~blank.iloc[:, i].to_numpy()
+        if filled.any():
+            line = int(body.index[filled][0]) + 1
+            raise InputError(
+                f"{path.name}, line {line}: column {i + 1} has values but no name on line 1; "
+                "name it in the header or remove it"
+            )
+    kept = [i for i in range(len(header)) if i not in unnamed]
+    frame = body.iloc[:, kept].copy()
+    frame.columns = [header[i] for i in kept]
+    _unique_columns(frame, path.name, "on line 1")
+    return frame.reset_index(drop=True), body.index.to_numpy() + 1
+
+
+def _empty_csv_message(path: Path) -> str:
+    opener = gzip.open if path.suffix.lower() == ".gz" else open
+    with opener(path, "rb") as f:
+        has_text = any(line.strip() for line in f)
+    if has_text:
+        return f"{path.name}, line 1: the first line is blank; the column names must come first"
+    return f"{path.name}: the file is empty; it needs a header and rows"
+
+
+def _unique_columns(frame: pd.DataFrame, source: str, where: str) -> None:
+    names = pd.Series(frame.columns)
+    repeated = names[names.duplicated(keep=False)]
+    if not repeated.empty:
+        name = repeated.iloc[0]
+        positions = [i + 1 for i in np.flatnonzero(names == name)]
+        raise InputError(
+            f"{source}: the column name {name!r} appears {len(positions)} times {where} "
+            f"(columns {', '.join(map(str, positions))}); give every column its own name"
+        )
 
 
 def _read_parquet(path: Path) -> pd.DataFrame:
@@ -183,19 +230,23 @@ def _read_parquet(path: Path) -> pd.DataFrame:
         frame = pd.read_parquet(path)
     except Exception as err:  # pyarrow raises many types for a bad file
         raise InputError(f"{path.name}: not a readable Parquet file ({err})") from None
-    frame.columns = [str(c) for c in frame.columns]
-    return frame.reset_index(drop=isinstance(frame.index, pd.RangeIndex))
+    frame = frame.reset_index(drop=isinstance(frame.index, pd.RangeIndex))
+    frame.columns = [str(c).strip() for c in frame.columns]
+    _unique_columns(frame, path.name, "in the file")
+    return frame
 
 
 def _frame_table(
-    frame: pd.DataFrame, path: Path, options: ReadOptions, unit: str, first: int
+    frame: pd.DataFrame, where: np.ndarray, path: Path, options: ReadOptions
 ) -> tuple[pd.DataFrame, dict]:
-    """Long table (time, series, value, where) from a long or wide frame, and attrs."""
+    """Long table (time, series, value, where) from a long or wide frame, and attrs.
+
+    ``where`` locates each row of ``frame`` in the file ("line 12", "row 3").
+    """
     name = path.name
     if frame.shape[0] == 0:
         raise InputError(f"{name}: no data rows; the file holds only a header")
     time_col = _pick(frame, options.time_col, _TIME_NAMES, "time", name)
-    where = np.array([f"{unit} {i + first}" for i in range(len(frame))], dtype=object)
     times = parse_times(frame[time_col], where, name, time_col)
     attrs = {}
     offsets = utc_offsets(frame[time_col])
@@ -219,7 +270,7 @@ def _frame_table(
             value_col = rest[0]
         _require(frame, value_col, name, "value")
         ids = frame[series_col].astype(str).str.strip()
-        blank = ids == ""
+        blank = (ids == "") | frame[series_col].isna().to_numpy()
         if blank.any():
             raise InputError(
                 f"{name}, {where[np.flatnonzero(blank)[0]]}: empty series id in column "
@@ -358,11 +409,9 @@ def parse_values(
     else:
         text = column.astype(str).str.strip()
         tokens = {t.strip().lower() for t in missing_tokens}
-        is_missing = text.str.lower().isin(tokens) | column.isna().to_numpy()
-        values = pd.to_numeric(text.where(~is_missing), errors="coerce").to_numpy(
-            dtype="float64", na_value=np.nan
-        )
-        bad = np.flatnonzero(np.isnan(values) & ~is_missing.to_numpy())
+        is_missing = (text.str.lower().isin(tokens) | column.isna()).to_numpy()
+        values = _numbers(text.to_numpy(dtype=object), is_missing)
+        bad = np.flatnonzero(np.isnan(values) & ~is_missing)
         if bad.size:
             i = bad[0]
             raise ValueParseError(
@@ -378,6 +427,29 @@ def parse_values(
             "replace them with a missing-value token or a real measurement"
         )
     return values
+
+
+def _numbers(cells: np.ndarray, is_missing: np.ndarray) -> np.ndarray:
+    """Cells as float64, NaN where missing or unreadable.
+
+    Parsed as Python parses a float literal, which rounds correctly: pandas'
+    own fast parser can land one unit in the last place off (e.g. on a
+    leading "+"), and an observed value must arrive bit for bit.
+    """
+    values = np.full(cells.shape, np.nan)
+    given = ~is_missing
+    try:
+        values[given] = np.asarray(cells[given], dtype=str).astype("float64")
+    except ValueError:  # some cell is not a number: parse one by one to find it
+        values[given] = [_number(cell) for cell in cells[given]]
+    return values
+
+
+def _number(cell: str) -> float:
+    try:
+        return float(cell)
+    except ValueError:
+        return np.nan
 
 
 def _netcdf_table(

@@ -5,8 +5,9 @@
 
 Every writer goes through :func:`atomic_path`: the file is written under a
 temporary name in the target folder and renamed onto the target only once
-complete, so a crash or an error never leaves a half-written output, and an
-existing output survives a failed rewrite.
+complete, so a crash, an error or an interruption never leaves a half-written
+output, and an existing output survives a failed rewrite. :func:`atomic_paths`
+does the same for a set of files that belong together.
 """
 
 from __future__ import annotations
@@ -15,6 +16,8 @@ import json
 import math
 import os
 import secrets
+import signal
+import threading
 from collections.abc import Iterable, Iterator
 from contextlib import contextmanager
 from datetime import date, datetime, timedelta
@@ -43,18 +46,60 @@ _TABLE_SUFFIXES = (".csv", ".parquet")
 def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
     """Yield a temporary path next to ``path``; move it onto ``path`` on success.
 
-    The temporary file (``.<name>.tmp-<random>`` in the same folder, so the
-    final :func:`os.replace` is a rename on one file system) is removed when
-    the block raises, and ``path`` is then left as it was.
+    See :func:`atomic_paths`; the temporary file is removed when the block
+    raises, and ``path`` is then left as it was.
     """
-    target = Path(path)
-    tmp = target.with_name(f".{target.name}.tmp-{secrets.token_hex(6)}")
-    try:
+    with atomic_paths([path]) as (tmp,):
         yield tmp
-        os.replace(tmp, target)
+
+
+@contextmanager
+def atomic_paths(paths: Iterable[str | os.PathLike]) -> Iterator[list[Path]]:
+    """Yield temporary paths next to ``paths``; move each onto its target on success.
+
+    A temporary file is named ``.<name>.tmp-<random><suffix>`` in the target's
+    folder: hidden, plainly temporary, ending like the target (writers choose
+    the format by the suffix), and on the same file system, so the final
+    :func:`os.replace` is a rename. When the block raises — an error, or
+    SIGINT/SIGTERM turned into an exception — every temporary file is removed
+    and every target left as it was. The renames run with SIGINT and SIGTERM
+    held back (delivered right after), so a set of files is replaced whole.
+    """
+    targets = [Path(p) for p in paths]
+    tmps = [t.with_name(f".{t.name}.tmp-{secrets.token_hex(6)}{t.suffix}") for t in targets]
+    try:
+        yield tmps
+        with _signals_held():
+            for tmp, target in zip(tmps, targets, strict=True):
+                os.replace(tmp, target)
     except BaseException:
-        tmp.unlink(missing_ok=True)
+        for tmp in tmps:
+            tmp.unlink(missing_ok=True)
         raise
+
+
+@contextmanager
+def _signals_held() -> Iterator[None]:
+    """Record SIGINT and SIGTERM during the block and deliver them after it.
+
+    Python runs signal handlers in the main thread only; elsewhere there is
+    nothing to hold back.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    caught: list[int] = []
+    # A handler installed outside Python (getsignal gives None) cannot be put back.
+    held = [sig for sig in (signal.SIGINT, signal.SIGTERM) if signal.getsignal(sig) is not None]
+    previous = {sig: signal.signal(sig, lambda signum, frame: caught.append(signum))
+                for sig in held}
+    try:
+        yield
+    finally:
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
+        for signum in caught[:1]:
+            signal.raise_signal(signum)
 
 
 def prepare_dir(out_dir: str | os.PathLike, names: Iterable[str], overwrite: bool) -> Path:

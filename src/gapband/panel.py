@@ -323,10 +323,16 @@ def _resolve_duplicates(
             "Remove the repeats, or pass --duplicates mean to average them"
         )
     # Average the observed values of a repeated pair; a pair with only missing
-    # values stays missing.
-    merged = table.groupby(["time", "series"], sort=False, as_index=False).agg(
-        value=("value", "mean"), where=("where", "first")
-    )
+    # values stays missing, and copies of one value keep it bit for bit.
+    with np.errstate(over="ignore"):  # an overflowing sum is replaced just below
+        merged = table.assign(half=table["value"] * 0.5).groupby(
+            ["time", "series"], sort=False, as_index=False
+        ).agg(value=("value", "mean"), half=("half", "mean"), low=("value", "min"),
+              high=("value", "max"), where=("where", "first"))
+    # Near the float64 limit the sum overflows; the mean of halves does not.
+    mean = merged["value"].where(np.isfinite(merged["value"]), 2.0 * merged["half"])
+    merged["value"] = mean.where(merged["low"] != merged["high"], merged["low"])
+    merged = merged.drop(columns=["half", "low", "high"])
     return merged, int(dup.sum() - table[dup].drop_duplicates(["time", "series"]).shape[0])
 
 
