@@ -108,8 +108,6 @@ def test_seed_is_recorded_in_holdout_json(inputs):
     assert report["settings"]["seed"] == SEED
 
 
-@pytest.mark.xfail(strict=True, reason="stats.document does not yet copy the fill's seed "
-                   "(gapband_seed) into stats-<period>.json; see the issue 9 closing note")
 def test_seed_is_recorded_in_stats_json(inputs, two_runs):
     folder = inputs[0]
     out = folder / "stats"
