@@ -738,11 +738,16 @@ def _run_in_processes(job: _Job, streams, cores: int, advance) -> list[_Chain]:
     with context.Manager() as manager, ProcessPoolExecutor(cores, context) as pool:
         reports = manager.Queue()
         futures = [pool.submit(_run_chain, job, stream, reports) for stream in streams]
-        while not all(future.done() for future in futures):
-            try:
-                advance(reports.get(timeout=0.1))
-            except queue.Empty:
-                pass
+        try:
+            while not all(future.done() for future in futures):
+                try:
+                    advance(reports.get(timeout=0.1))
+                except queue.Empty:
+                    pass
+        except BaseException:  # interrupted: stop the chains now rather than wait for them
+            for process in list(getattr(pool, "_processes", {}).values()):
+                process.terminate()
+            raise
         while not reports.empty():
             advance(reports.get())
         return [future.result() for future in futures]
