@@ -2,10 +2,13 @@
 
 Deterministic for a given config (its seed). Writes one long CSV per
 quantity with the gaps punched in, and a CSV with the true values of every
-hidden cell so the demo can show how good the fills were::
+hidden cell so the demo can show how good the fills were. A slice (fewer
+days or stations) is cut from the whole simulated network, so it holds the
+same values and gaps as the full run::
 
     python demo/generate.py --out demo/output            # the full year
-    python demo/generate.py --out /tmp/x --days 21 --stations 4
+    python demo/generate.py --out /tmp/x --quick         # the slice of gapband demo --quick
+    python demo/generate.py --out /tmp/x --first-day 100 --days 21 --stations QUILL,BRASS
 """
 
 from __future__ import annotations
@@ -17,6 +20,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 from scipy.signal import lfilter
+
+from gapband.errors import UsageError
+from gapband.outputs import atomic_path
 
 CONFIG = Path(__file__).with_name("network.toml")
 QUANTITIES = {"no2": "µg/m³", "temp": "°C"}
@@ -35,11 +41,11 @@ def ar1(rng: np.random.Generator, phi: float, sd: float, shape: tuple[int, int])
     return lfilter([1.0], [1.0, -phi], shocks, axis=-1)
 
 
-def simulate(config: dict, days: int, n_stations: int) -> dict[str, pd.DataFrame]:
-    """True hourly values, one wide frame (time × station) per quantity."""
+def simulate(config: dict) -> dict[str, pd.DataFrame]:
+    """True hourly values of the whole network, one wide frame (time × station) per quantity."""
     rng = np.random.default_rng(config["seed"])
-    stations = config["station"][:n_stations]
-    times = pd.date_range(config["start"], periods=24 * days, freq="h")
+    stations = config["station"]
+    times = pd.date_range(config["start"], periods=24 * config["days"], freq="h")
     n, t = len(stations), len(times)
     hour = times.hour.to_numpy()
     yearly = 2 * np.pi * (times.day_of_year.to_numpy() - 1) / 365.25
@@ -107,27 +113,50 @@ def long_table(wide: pd.DataFrame) -> pd.DataFrame:
     return table
 
 
-def write_network(out: Path, days: int | None = None, n_stations: int | None = None) -> list[Path]:
-    """Write ``tolmere_<quantity>.csv`` and ``tolmere_truth.csv`` into ``out``."""
+def quick_slice(config: dict) -> dict:
+    """The ``[quick]`` table of the config as keywords of :func:`write_network`."""
+    quick = config["quick"]
+    return {"first_day": quick["first_day"], "days": quick["days"],
+            "stations": list(quick["stations"])}
+
+
+def write_network(
+    out: Path, *, first_day: int = 0, days: int | None = None, stations: list[str] | None = None
+) -> list[Path]:
+    """Write ``tolmere_<quantity>.csv`` and ``tolmere_truth.csv`` into ``out``.
+
+    The slice ``first_day`` to ``first_day + days`` of the listed ``stations``
+    (default: the whole record, every station) is cut from the whole network.
+    """
     config = load_config()
-    days = days or config["days"]
-    n_stations = n_stations or len(config["station"])
-    truth = simulate(config, days, n_stations)
+    ids = [s["id"] for s in config["station"]]
+    unknown = sorted(set(stations or ()) - set(ids))
+    if unknown:
+        raise UsageError(f"no station {unknown[0]!r} in the demo network; its stations are "
+                         f"{', '.join(ids)}")
+    days = config["days"] - first_day if days is None else days
+    if not (0 <= first_day and 0 < days and first_day + days <= config["days"]):
+        raise UsageError(f"days {first_day} to {first_day + days} are not inside the demo "
+                         f"network's record, days 0 to {config['days']}")
+    keep = [ids.index(s) for s in stations] if stations else list(range(len(ids)))
+    rows = slice(24 * first_day, 24 * (first_day + days))
     out.mkdir(parents=True, exist_ok=True)
     written, hidden = [], []
-    for k, (quantity, wide) in enumerate(truth.items()):
-        ids = list(wide.columns)
+    for k, (quantity, whole) in enumerate(simulate(config).items()):
         # Station-wide events hit both instruments; short drops differ per instrument.
-        mask = gap_mask(config, ids, len(wide), seed_offset=k)
+        mask = gap_mask(config, ids, len(whole), seed_offset=k)[keep, rows]
+        wide = whole.iloc[rows, keep]
         gapped = wide.mask(mask.T)
         path = out / f"tolmere_{quantity}.csv"
-        long_table(gapped).to_csv(path, index=False)
+        with atomic_path(path) as tmp:
+            long_table(gapped).to_csv(tmp, index=False)
         written.append(path)
         truth_long = long_table(wide)
         truth_long = truth_long[mask.reshape(-1)]
         hidden.append(truth_long.assign(quantity=quantity, units=QUANTITIES[quantity]))
     truth_path = out / "tolmere_truth.csv"
-    pd.concat(hidden).to_csv(truth_path, index=False)
+    with atomic_path(truth_path) as tmp:
+        pd.concat(hidden).to_csv(tmp, index=False)
     return [*written, truth_path]
 
 
@@ -135,10 +164,18 @@ def main() -> None:
     """Command-line entry: write the network's CSV files."""
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--out", type=Path, required=True, help="output folder")
-    parser.add_argument("--days", type=int, help="number of days (default: the config's)")
-    parser.add_argument("--stations", type=int, help="number of stations (default: all)")
+    parser.add_argument("--quick", action="store_true",
+                        help="the config's [quick] slice (what gapband demo --quick runs on)")
+    parser.add_argument("--first-day", type=int, default=0, help="first day of the slice")
+    parser.add_argument("--days", type=int, help="days in the slice (default: to the end)")
+    parser.add_argument("--stations", help="comma-separated station ids (default: all)")
     args = parser.parse_args()
-    for path in write_network(args.out, args.days, args.stations):
+    if args.quick:
+        chosen = quick_slice(load_config())
+    else:
+        chosen = {"first_day": args.first_day, "days": args.days,
+                  "stations": args.stations.split(",") if args.stations else None}
+    for path in write_network(args.out, **chosen):
         print(path)
 
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import subprocess
 import sys
 
@@ -368,3 +369,25 @@ def test_without_blocks_dask_is_not_imported():
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                           check=True)
     assert done.stdout.strip() == "[]"
+
+
+def test_fill_command_runs_blocks_and_refuses_two_clusters(gappy, tmp_path):
+    from gapband.cli import main
+
+    panel, _ = gappy
+    csv = tmp_path / "gappy.csv"
+    panel["value"].to_pandas().T.rename_axis("time").to_csv(csv)
+    model = tmp_path / "tiny.toml"
+    model.write_text('base = "hourly"\nrank = 1\n[[seasonal]]\nperiod = "1D"\nharmonics = 2\n')
+    common = [str(csv), "--model", str(model), "--draws", "60", "--tune", "60", "--quiet",
+              "--keep-draws", "0"]
+    with pytest.raises(SystemExit) as done:
+        main(["fill", *common, "--out", str(tmp_path / "out"),
+              "--blocks", "series=3,window=14D,overlap=3D"])
+    assert done.value.code == 0
+    summary = json.loads((tmp_path / "out" / "summary.json").read_text())
+    assert len(summary["blocks"]["runs"]) == 4 and not summary["failed_blocks"]
+    with pytest.raises(SystemExit) as done:
+        main(["fill", *common, "--out", str(tmp_path / "two"), "--workers", "2",
+              "--scheduler", "tcp://127.0.0.1:1"])
+    assert done.value.code == 2

@@ -8,6 +8,7 @@ from __future__ import annotations
 import functools
 import logging
 import math
+import signal
 import sys
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -18,7 +19,7 @@ from rich.markup import escape
 from rich.table import Table
 
 import gapband
-from gapband.errors import GapbandError, InputError, SpecError, UsageError
+from gapband.errors import GapbandError, InputError, Interrupted, SpecError, UsageError
 
 if TYPE_CHECKING:
     from gapband.filling import FillOptions
@@ -193,10 +194,19 @@ def fill_settings(kw: dict, **rules) -> tuple[Path | None, str | None, FillOptio
 @click.option("--keep-draws", type=click.IntRange(0), default=200, show_default=True,
               metavar="N", help="Joint predictive draws of the filled cells kept in filled.nc "
               "for gapband stats (0: none).")
+@click.option("--blocks", metavar="auto|SPEC",
+              help="Fit in blocks of correlated series × overlapping time windows: 'auto' or "
+              "e.g. 'series=50,window=60D,overlap=3D' (docs/scaling.md).")
+@click.option("--workers", type=click.IntRange(1), metavar="N",
+              help="Run the blocks on a local Dask cluster of N workers, one thread each "
+              "(implies --blocks auto).")
+@click.option("--scheduler", metavar="ADDRESS",
+              help="Run the blocks on an existing Dask scheduler, e.g. tcp://host:8786 "
+              "(implies --blocks auto).")
 @click.option("--overwrite", is_flag=True, help="Replace existing outputs in --out.")
 @handle_errors
 def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width, max_gap, table,
-         keep_draws, overwrite, **kw):
+         keep_draws, blocks, workers, scheduler, overwrite, **kw):
     """Fill every missing cell of INPUT with a credible interval and a flag."""
     from gapband import filling
     from gapband.outputs import prepare_dir
@@ -204,10 +214,17 @@ def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width,
     model, transform, options = fill_settings(kw, level=flag_level, max_width=max_width,
                                               max_rel_width=max_rel_width, max_gap=max_gap)
     options.keep_draws = keep_draws
+    if workers is not None and scheduler is not None:
+        raise UsageError("give --workers (a new local cluster) or --scheduler (an existing "
+                         "one), not both")
     prepare_dir(out_dir, ["filled.nc", f"filled.{table}", "summary.json"], overwrite)
     panel = gapband.read(input_path, **kw)
-    result, summary = filling.fill(panel, model=model, transform=transform, options=options,
-                                   calibration=calibration)
+    if blocks is None and workers is None and scheduler is None:
+        result, summary = filling.fill(panel, model=model, transform=transform,
+                                       options=options, calibration=calibration)
+    else:
+        result, summary = fill_in_blocks(panel, blocks or "auto", workers, scheduler, model,
+                                         transform, options, calibration)
     written = filling.write_fill(result, summary, out_dir, table=table, overwrite=True)
     for warning in summary["diagnostics"].get("warnings", []):
         errors.print(f"[bold yellow]warning:[/] {escape(warning)}", highlight=False)
@@ -221,6 +238,20 @@ def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width,
     )
     for path in written:
         console.print(f"wrote {path}", highlight=False)
+
+
+def fill_in_blocks(panel, blocks: str, workers: int | None, scheduler: str | None, model,
+                   transform, options, calibration) -> tuple:
+    """Fill block by block (:mod:`gapband.parallel`), on Dask when asked."""
+    from gapband import parallel
+
+    plan = parallel.plan_blocks(panel, **parallel.parse_blocks(blocks), model=model)
+    if workers is None and scheduler is None:
+        runner = parallel.InProcess()
+    else:
+        runner = parallel.DaskRunner(workers=workers, scheduler=scheduler)
+    return parallel.fill_blocks(panel, plan, model=model, transform=transform,
+                                options=options, calibration=calibration, runner=runner)
 
 
 def parse_baselines(ctx, param, text: str) -> tuple[str, ...]:
@@ -405,22 +436,67 @@ def report(fill_dir, out_path, holdout_path, period, capture_threshold, overwrit
 @cli.command()
 @click.option("--out", "out_dir", type=click.Path(path_type=Path), default=Path("gapband-demo"),
               show_default=True, help="Folder for the demo data and results.")
-@click.option("--quick", is_flag=True, help="A small slice (4 stations, 4 weeks) for a fast run.")
+@click.option("--quick", is_flag=True, help="A small slice (5 stations, 4 weeks) and fewer "
+              "draws: about a minute instead of several.")
 @click.option("--overwrite", is_flag=True, help="Replace results of an earlier demo run.")
+@click.option("--quiet", is_flag=True, help="No progress bars.")
 @handle_errors
-def demo(out_dir, quick, overwrite):
-    """Run the whole job on an invented network of monitoring stations."""
-    from gapband.demo.generate import write_network
-    from gapband.outputs import prepare_dir
+def demo(out_dir, quick, overwrite, quiet):
+    """Run the whole job on an invented network of monitoring stations.
 
-    prepare_dir(out_dir, ["tolmere_no2.csv", "tolmere_temp.csv", "tolmere_truth.csv"],
-                overwrite=overwrite)
-    days, stations = (28, 4) if quick else (None, None)
-    data = write_network(out_dir, days=days, n_stations=stations)
-    console.print(f"demo network written to {out_dir}/", highlight=False)
-    for path, units in ((data[0], "µg/m³"), (data[1], "°C")):
-        panel = gapband.read(path, units=units)
-        console.print(capture_table(gapband.inspect(panel)))
+    Writes the Tolmere Basin network (hourly no2 and temp), then for each
+    quantity: inspect, holdout, fill widened by the holdout's factors,
+    stats and report; ends with three headline figures.
+    """
+    from gapband.demo.run import LEVEL, run
+
+    headline = run(out_dir, quick=quick, overwrite=overwrite, progress=not quiet,
+                   show=show_demo_stage)
+    console.print(demo_table(headline, LEVEL))
+    for quantity, figures in headline["quantities"].items():
+        console.print(f"report ({quantity}): {figures['report']}", highlight=False)
+    console.print(f"figures: {Path(out_dir) / 'headline.json'}", highlight=False)
+
+
+def show_demo_stage(stage: str, quantity: str, produced) -> None:
+    """Print what one stage of the demo produced."""
+    if stage == "inspect":
+        console.print(capture_table(produced))
+    elif stage == "holdout":
+        console.print(scores_table(produced))
+    elif stage == "fill":
+        factors = produced["calibration"]["factors"]
+        console.print(f"{quantity}: intervals widened by " + ", ".join(
+            f"{factor:.3g} ({level} %)" for level, factor in factors.items()), highlight=False)
+        for warning in produced["diagnostics"].get("warnings", []):
+            errors.print(f"[bold yellow]warning:[/] {escape(warning)}", highlight=False)
+    elif stage == "stats":
+        console.print(f"{quantity}: wrote " + ", ".join(str(p) for p in produced),
+                      highlight=False)
+
+
+def demo_table(headline: dict, level: float) -> Table:
+    """The demo's headline figures per quantity."""
+    table = Table(
+        title=f"{escape(headline['network'])}: headline figures"
+        + (" (quick slice)" if headline["quick"] else ""),
+        caption="held out: observed cells hidden and refitted (holdout.json); real gaps: the "
+        "demo's true values of the cells it hid; MAE in data units (smaller is better)",
+    )
+    for header in ("quantity", f"held-out coverage {level:g} %", f"real gaps: coverage {level:g} %",
+                   "MAE of fills", "MAE linear interp.", "cells flagged uncertain"):
+        table.add_column(header, justify="left" if header == "quantity" else "right",
+                         no_wrap=True)
+    for quantity, figures in headline["quantities"].items():
+        truth = figures["truth"]["overall"]
+        table.add_row(
+            f"{escape(quantity)} ({escape(figures['units'])})",
+            _number(figures["holdout"]["coverage_90"], ".3f"),
+            _number(truth["coverage_90"], ".3f"),
+            _number(truth["mae"], ".3g"), _number(truth["mae_linear"], ".3g"),
+            str(figures["filled_uncertain"]),
+        )
+    return table
 
 
 def capture_table(figures: dict) -> Table:
@@ -466,16 +542,32 @@ def _short(iso: str | None) -> str:
 
 
 def main(argv: list[str] | None = None) -> None:
-    """Entry point of the ``gapband`` console script."""
+    """Entry point of the ``gapband`` console script.
+
+    SIGINT (Ctrl-C) and SIGTERM stop a run alike: files being written are
+    removed, outputs already complete stay, one line says so, and the exit
+    code is 128 + the signal number (130, 143), as shells report a stop.
+    """
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        signal.signal(sig, _interrupt)
     try:
         cli.main(args=argv, prog_name="gapband", standalone_mode=True)
     except SystemExit:
         raise
+    except Interrupted as stop:
+        errors.print(f"[bold red]interrupted:[/] {stop}; files being written were removed, "
+                     "outputs already complete are kept", highlight=False)
+        sys.exit(128 + stop.signum)
     except Exception as err:  # an unexpected failure: say so plainly, exit 1
         errors.print(f"[bold red]internal error:[/] {type(err).__name__}: {escape(str(err))}",
                      highlight=False)
         errors.print("please report this with the command you ran", highlight=False)
         sys.exit(EXIT_INTERNAL)
+
+
+def _interrupt(signum: int, frame) -> None:
+    """Signal handler of :func:`main`: unwind the run as an exception."""
+    raise Interrupted(signum)
 
 
 if __name__ == "__main__":  # pragma: no cover
