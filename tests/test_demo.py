@@ -13,11 +13,11 @@ import pandas as pd
 import pytest
 import xarray as xr
 from click.testing import CliRunner
-from gapband.demo.generate import load_config, quick_slice, write_network
-from gapband.demo.run import DEMO_QUANTITIES, output_names
 
 import gapband
 from gapband.cli import cli
+from gapband.demo.generate import load_config, quick_slice, write_network
+from gapband.demo.run import DEMO_QUANTITIES, output_names
 from gapband.filling import COMPONENTS
 
 LEVELS = ("50", "80", "90", "95")
