@@ -188,7 +188,7 @@ def run(
     scheme: Scheme = "random",
     fraction: float = DEFAULT_FRACTION,
     repeats: int = 1,
-    baseline_names: Sequence[str] = baselines.NAMES,
+    baseline_names: Sequence[str] = baselines.DEFAULT_NAMES,
 ) -> dict:
     """Hide, refit, score and derive widening factors; return the ``holdout.json`` content.
 
@@ -205,7 +205,7 @@ def run(
         Masks (and refits) to pool the scores over.
     baseline_names : sequence of str
         Baselines to score on the same cells: any of "linear", "seasonal",
-        "kalman".
+        "kalman", "dfm" (default: all but "dfm").
 
     Returns
     -------
@@ -228,6 +228,7 @@ def run(
     if unknown:
         raise UsageError(f"unknown baseline {unknown[0]!r}; choose from "
                          f"{', '.join(baselines.NAMES)} (--baselines)")
+    baselines.check(baseline_names, panel)
     spec, spec_label = resolve_spec(panel, model, transform)
     log.info("holdout: %s masks, fraction %g, %d repeat(s); model: %s", scheme, fraction,
              repeats, spec_label)
@@ -487,12 +488,7 @@ def _model_scores(fitted: Fitted, y: np.ndarray, cells: np.ndarray,
 
 def _baseline_scores(name: str, panel: xr.Dataset, spec: ModelSpec, y: np.ndarray,
                      cells: np.ndarray, levels: Sequence[float]) -> dict:
-    if name == "linear":
-        fill = baselines.linear(panel)
-    elif name == "seasonal":
-        fill = baselines.seasonal_profile(panel, spec)
-    else:
-        fill = baselines.kalman(panel, spec)
+    fill = baselines.fill(name, panel, spec)
     point = fill["point"].transpose("series", "time").values.ravel()[cells]
     if "sd" in fill:
         sd = fill["sd"].transpose("series", "time").values.ravel()[cells]
