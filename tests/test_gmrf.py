@@ -6,14 +6,14 @@ import numpy as np
 import pytest
 from statsmodels.tsa.arima_process import ArmaProcess
 
-from gapband.gmrf import ar1_precision, draw_ar1_given_noisy
+from gapband.gmrf import ar1_band, draw_ar1_given_noisy
 
 
 def test_ar1_precision_inverts_the_ar1_autocovariance():
     # Source: statsmodels ArmaProcess.acovf, the theoretical autocovariance
     # of the AR(1), scaled to marginal variance s².
     rho, sd, n = 0.7, 1.8, 15
-    ab = ar1_precision(rho, sd, n)
+    ab = ar1_band(np.array([sd]), np.array([rho]), np.zeros((1, n)))
     precision = np.diag(ab[0]) + np.diag(ab[1, :-1], -1) + np.diag(ab[1, :-1], 1)
     acov = ArmaProcess([1.0, -rho], [1.0]).acovf(n)
     lags = np.abs(np.subtract.outer(np.arange(n), np.arange(n)))

@@ -2,9 +2,10 @@
 
 A stationary AR(1) path observed with Gaussian noise at some times has a
 tridiagonal posterior precision, so its conditional distribution can be
-drawn exactly in O(T) with a banded Cholesky factorisation (Rue & Held,
-Gaussian Markov Random Fields, 2005, section 2.4: sampling from a GMRF in
-its canonical parameterisation).
+drawn exactly in O(T) with a tridiagonal factorisation; paths of several
+processes in time have a banded precision, drawn with a banded Cholesky
+factorisation (Rue & Held, Gaussian Markov Random Fields, 2005, section
+2.4: sampling from a GMRF in its canonical parameterisation).
 """
 
 from __future__ import annotations
@@ -18,16 +19,6 @@ from scipy.linalg.lapack import dpttrf, dpttrs, dtbtrs
 #: Smallest innovation variance used, so a path with sd → 0 or ρ → 1 stays
 #: numerically positive definite.
 _TINY = 1e-10
-
-
-def ar1_precision(rho: float, sd: float, n_time: int) -> np.ndarray:
-    """Precision of a stationary AR(1) path with marginal sd ``sd``, lower banded form.
-
-    Returns an array ``ab`` of shape (2, n_time): ``ab[0]`` the diagonal,
-    ``ab[1, :-1]`` the sub-diagonal (the layout of scipy.linalg.cholesky_banded
-    with ``lower=True``).
-    """
-    return ar1_band(np.array([sd]), np.array([rho]), np.zeros((1, n_time)))
 
 
 def ar1_band(sd: np.ndarray, rho: np.ndarray, weight: np.ndarray) -> np.ndarray:
