@@ -68,7 +68,7 @@ from rich.progress import (
 from scipy.stats import geninvgauss
 from threadpoolctl import threadpool_limits
 
-from gapband.gmrf import StackedAr1, draw_banded, draw_bordered
+from gapband.gmrf import StackedAr1, ar1_entries, draw_banded, draw_bordered
 from gapband.spec import ModelSpec
 
 #: Floors that keep variances and sums of squares strictly positive.
@@ -357,11 +357,8 @@ class _Sampler:
         n_time = self.z.shape[1]
         times = np.arange(n_time) * d
         signal = self._mean(s)
-        rho = s.own_rho
-        innovation = np.maximum(np.maximum(s.own_sd, np.sqrt(_TINY)) ** 2 * (1.0 - rho**2),
-                                _TINY)
         # Q_n = (inner on the diagonal, end at both ends, off next to it) for each series.
-        inner, end, off = (1.0 + rho**2) / innovation, 1.0 / innovation, -rho / innovation
+        inner, end, off = ar1_entries(s.own_sd, s.own_rho)
         q_signal = inner[:, None] * signal
         q_signal[:, [0, -1]] = end[:, None] * signal[:, [0, -1]]
         q_signal[:, 1:] += off[:, None] * signal[:, :-1]

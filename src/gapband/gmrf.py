@@ -38,15 +38,25 @@ def ar1_band(sd: np.ndarray, rho: np.ndarray, weight: np.ndarray) -> np.ndarray:
         paths, so one banded factorisation serves them all in O(rows·time).
     """
     rows, n_time = weight.shape
-    innovation = np.maximum(np.maximum(sd, np.sqrt(_TINY)) ** 2 * (1.0 - rho**2), _TINY)
-    innovation = innovation[:, None]
+    inner, end, off = ar1_entries(sd, rho)
     ab = np.empty((2, rows, n_time))
-    ab[0] = (1.0 + rho[:, None] ** 2) / innovation
-    ab[0, :, [0, -1]] = 1.0 / innovation[:, 0]
-    ab[1] = -rho[:, None] / innovation
+    ab[0] = inner[:, None]
+    ab[0, :, [0, -1]] = end
+    ab[1] = off[:, None]
     ab[1, :, -1] = 0.0
     ab[0] += weight
     return ab.reshape(2, -1)
+
+
+def ar1_entries(sd: np.ndarray, rho: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The entries of each stationary AR(1) path's tridiagonal precision Q.
+
+    Returns ``inner`` (the diagonal inside the path), ``end`` (the diagonal
+    at its first and last step) and ``off`` (next to the diagonal), each of
+    shape (rows,), for marginal sds ``sd`` and coefficients ``rho``.
+    """
+    innovation = np.maximum(np.maximum(sd, np.sqrt(_TINY)) ** 2 * (1.0 - rho**2), _TINY)
+    return (1.0 + rho**2) / innovation, 1.0 / innovation, -rho / innovation
 
 
 @dataclass(frozen=True)
