@@ -48,7 +48,6 @@ series. Chains run in parallel processes.
 from __future__ import annotations
 
 import multiprocessing
-import os
 import queue
 import sys
 import time
@@ -586,7 +585,7 @@ def sample(
     tune: int = 1000,
     chains: int = 2,
     seed: int = 0,
-    cores: int | None = None,
+    cores: int = 1,
     progress: bool = False,
 ) -> tuple[xr.Dataset, dict, dict]:
     """Draw from the posterior of the gapband model by block Gibbs.
@@ -608,9 +607,9 @@ def sample(
     seed : int
         Each chain's generator is spawned from ``numpy.random.SeedSequence(seed)``;
         the same seed gives the same draws, however many cores run them.
-    cores : int, optional
-        Chains run at once, each in its own process (default: as many as
-        there are chains and CPUs); 1 runs them one after another here.
+    cores : int
+        Chains run at once, each in its own process; 1 (the default) runs
+        them one after another here. :func:`gapband.inference.fit` chooses it.
     progress : bool
         Show a progress bar (sweeps done, time remaining) on stderr.
 
@@ -632,7 +631,7 @@ def sample(
         Seconds of burn-in (``tune``) and kept sweeps (``sample``), summed
         over chains, and ``wall`` for the whole run.
     """
-    cores = max(1, min(chains, cores or os.cpu_count() or 1))
+    cores = max(1, min(chains, cores))
     streams = np.random.SeedSequence(seed).spawn(chains)
     job = _Job(z, fourier, spec, rank, ar_factors, draws, tune)
     started = time.perf_counter()
