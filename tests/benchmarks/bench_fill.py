@@ -238,6 +238,26 @@ def run_one(panel_name: str, method: str, args: argparse.Namespace) -> dict:
     }
 
 
+def rows_in_processes(script: str, panels: list[str], modes: list[str],
+                      passed: list[str]) -> list[dict]:
+    """Run ``script --one PANEL MODE`` for every pair, each in its own process.
+
+    Each run prints one JSON row last on stdout; the rows come back in order
+    (echoed to stderr as they arrive), and a failed run is reported and skipped.
+    """
+    rows = []
+    for panel in panels:
+        for mode in modes:
+            command = [sys.executable, script, "--one", panel, mode, *passed]
+            done = subprocess.run(command, capture_output=True, text=True)
+            if done.returncode:
+                print(f"{panel}/{mode} failed:\n{done.stderr[-3000:]}", file=sys.stderr)
+                continue
+            rows.append(json.loads(done.stdout.strip().splitlines()[-1]))
+            print(json.dumps(rows[-1]), file=sys.stderr)
+    return rows
+
+
 def main() -> None:
     """Run every (panel, method) in its own process and print a table."""
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
@@ -254,19 +274,10 @@ def main() -> None:
     if args.one:
         print(json.dumps(run_one(*args.one, args)))
         return
-    rows = []
     passed = ["--nyc-days", str(args.nyc_days), "--draws", str(args.draws), "--tune",
               str(args.tune), "--chains", str(args.chains), "--em-iterations",
               str(args.em_iterations)]
-    for panel_name in args.panels.split(","):
-        for method in args.methods.split(","):
-            command = [sys.executable, __file__, "--one", panel_name, method, *passed]
-            done = subprocess.run(command, capture_output=True, text=True)
-            if done.returncode:
-                print(f"{panel_name}/{method} failed:\n{done.stderr[-2000:]}", file=sys.stderr)
-                continue
-            rows.append(json.loads(done.stdout.strip().splitlines()[-1]))
-            print(json.dumps(rows[-1]), file=sys.stderr)
+    rows = rows_in_processes(__file__, args.panels.split(","), args.methods.split(","), passed)
     header = ("panel", "method", "fit_s", "compile_s", "predict_s", "peak_rss_mb", "sweeps",
               "ess_per_s", "r_hat_max", "mae", "mae_linear", "crps")
     print("\t".join(header + tuple(f"cov{level}" for level in LEVELS)))

@@ -40,8 +40,6 @@ import argparse
 import json
 import os
 import platform
-import subprocess
-import sys
 import threading
 import time
 from pathlib import Path
@@ -50,7 +48,7 @@ import numpy as np
 import pandas as pd
 import psutil
 import scoringrules
-from bench_fill import panel_and_cells, run_one
+from bench_fill import panel_and_cells, rows_in_processes, run_one
 
 from gapband import filling, parallel
 from gapband.outputs import atomic_path
@@ -254,16 +252,7 @@ def main() -> None:
         return
     passed = [f"--{key.replace('_', '-')}={value}" for key, value in vars(args).items()
               if key not in ("sizes", "modes", "out", "one")]
-    rows = []
-    for size in args.sizes.split(","):
-        for mode in args.modes.split(","):
-            command = [sys.executable, __file__, "--one", size, mode, *passed]
-            done = subprocess.run(command, capture_output=True, text=True)
-            if done.returncode:
-                print(f"{size}/{mode} failed:\n{done.stderr[-3000:]}", file=sys.stderr)
-                continue
-            rows.append(json.loads(done.stdout.strip().splitlines()[-1]))
-            print(json.dumps(rows[-1]), file=sys.stderr)
+    rows = rows_in_processes(__file__, args.sizes.split(","), args.modes.split(","), passed)
     page = table(rows, args)
     args.out.parent.mkdir(parents=True, exist_ok=True)
     with atomic_path(args.out) as tmp:
