@@ -452,9 +452,9 @@ def joint_draws(fitted: Fitted, result: xr.Dataset, n_draws: int, seed: int) -> 
 
 def _thin(posterior: xr.Dataset, n_draws: int) -> xr.Dataset:
     """Keep ``n_draws`` posterior draws evenly spaced over all chains, as one chain."""
-    drawn = [name for name, var in posterior.data_vars.items()
-             if {"chain", "draw"} <= set(var.dims)]
-    stacked = posterior[drawn].stack(sample=("chain", "draw"))
+    from gapband.model import per_draw  # PyMC is imported only when a fit runs
+
+    stacked = posterior[per_draw(posterior)].stack(sample=("chain", "draw"))
     total = stacked.sizes["sample"]
     keep = np.unique(np.linspace(0, total - 1, min(n_draws, total)).round().astype("int64"))
     thinned = (stacked.isel(sample=keep).drop_vars(["sample", "chain", "draw"])

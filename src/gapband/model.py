@@ -234,6 +234,16 @@ def draw_arrays(posterior: xr.Dataset, built: BuiltModel) -> dict[str, np.ndarra
     return arrays
 
 
+def per_draw(posterior: xr.Dataset) -> list[str]:
+    """The posterior variables that have one value per draw (dims ``chain`` and ``draw``).
+
+    Others, such as the Gibbs sampler's per-chain ``own_mean``, would be
+    broadcast over every draw by stacking the two dims.
+    """
+    return [name for name, var in posterior.data_vars.items()
+            if {"chain", "draw"} <= set(var.dims)]
+
+
 def mean_at(arrays: dict[str, np.ndarray], cells: np.ndarray, n_time: int) -> np.ndarray:
     """Draws of the model mean (standardised units) at flat cells, shape (S, cells).
 

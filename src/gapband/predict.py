@@ -19,7 +19,7 @@ from rich.progress import track
 from gapband.errors import UsageError
 from gapband.gmrf import draw_ar1_given_noisy
 from gapband.inference import Fit
-from gapband.model import draw_arrays, forward, inverse, mean_at
+from gapband.model import draw_arrays, forward, inverse, mean_at, per_draw
 
 DEFAULT_LEVELS = (50, 80, 90, 95)
 
@@ -183,9 +183,7 @@ def components(fit: Fit) -> xr.Dataset:
         Variables ``trend``, ``seasonal``, ``short_term`` and ``own``, dims
         ("series", "time"); a component the spec leaves out is zero.
     """
-    # Only variables with a draw dimension: stacking would broadcast the rest.
-    drawn = [name for name, var in fit.posterior.data_vars.items()
-             if {"chain", "draw"} <= set(var.dims) and name != "own_gap"]
+    drawn = [name for name in per_draw(fit.posterior) if name != "own_gap"]
     post = fit.posterior[drawn].stack(sample=("chain", "draw")).transpose("sample", ...)
     built = fit.built
     scale = built.scale.values[:, None]
