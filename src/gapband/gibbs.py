@@ -51,7 +51,7 @@ import multiprocessing
 import queue
 import sys
 import time
-from concurrent.futures import ProcessPoolExecutor
+import traceback
 from dataclasses import dataclass
 
 import numpy as np
@@ -723,36 +723,58 @@ OWN_KEPT = ("own_gap", "own_mean")
 _REPORT_EVERY = 0.25
 
 def _run_in_processes(job: _Job, streams, cores: int, advance) -> list[_Chain]:
-    """Run one chain per stream on ``cores`` worker processes; results in stream order.
+    """Run the chains on ``cores`` worker processes; results in stream order.
 
+    Worker i runs chains i, i + cores, ... and reports sweeps done, its
+    results and any failure through one queue. The workers are ours alone,
+    so an interruption or a failure stops every one of them at once.
     Workers are forked on Linux (no re-import of the caller's script, so
     scripts need no ``if __name__ == "__main__"`` guard) and spawned
     elsewhere, where forking a process with threads is unsafe.
     """
-    method = "fork" if sys.platform == "linux" else "spawn"
-    context = multiprocessing.get_context(method)
-    with context.Manager() as manager, ProcessPoolExecutor(cores, context) as pool:
-        reports = manager.Queue()
-        futures = [pool.submit(_run_chain, job, stream, reports) for stream in streams]
-        try:
-            while not all(future.done() for future in futures):
-                try:
-                    advance(reports.get(timeout=0.1))
-                except queue.Empty:
-                    pass
-        except BaseException:  # interrupted: stop the chains now rather than wait for them
-            for process in list(getattr(pool, "_processes", {}).values()):
-                process.terminate()
-            raise
-        while not reports.empty():
-            advance(reports.get())
-        return [future.result() for future in futures]
+    context = multiprocessing.get_context("fork" if sys.platform == "linux" else "spawn")
+    reports = context.Queue()
+    workers = [context.Process(target=_run_chains, daemon=True,
+                               args=(job, list(enumerate(streams))[first::cores], reports))
+               for first in range(cores)]
+    results: dict[int, _Chain] = {}
+    finished = False
+    try:
+        for worker in workers:
+            worker.start()
+        while len(results) < len(streams):
+            try:
+                kind, index, payload = reports.get(timeout=0.1)
+            except queue.Empty:
+                if not any(worker.is_alive() for worker in workers):
+                    raise RuntimeError("a Gibbs chain process ended without its draws") from None
+                continue
+            if kind == "sweeps":
+                advance(payload)
+            elif kind == "failed":
+                raise RuntimeError(f"Gibbs chain {index + 1} failed:\n{payload}")
+            else:
+                results[index] = payload
+        finished = True
+    finally:
+        for worker in workers:
+            if not finished:  # interrupted or failed: stop the chains now
+                worker.terminate()
+            worker.join()
+    return [results[index] for index in range(len(streams))]
 
 
-def _run_chain(job: _Job, stream: np.random.SeedSequence, reports) -> _Chain:
-    """A chain in a worker process, on one BLAS thread (the chains share the cores)."""
+def _run_chains(job: _Job, chains: list[tuple[int, np.random.SeedSequence]], reports) -> None:
+    """Chains in a worker process, on one BLAS thread (the chains share the cores)."""
     with threadpool_limits(1):
-        return job.run(stream, reports.put)
+        for index, stream in chains:
+            try:
+                chain = job.run(stream, lambda done, index=index: reports.put(
+                    ("sweeps", index, done)))
+            except Exception:
+                reports.put(("failed", index, traceback.format_exc()))
+                return
+            reports.put(("chain", index, chain))
 
 
 class _Store:
