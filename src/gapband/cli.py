@@ -173,6 +173,54 @@ def fill_settings(kw: dict, **rules) -> tuple[Path | None, str | None, FillOptio
     return given["model"], given["transform"], options
 
 
+def block_options(command):
+    """Options shared by every command that can fit in blocks: how to cut them, where to run."""
+    options = [
+        click.option("--blocks", metavar="auto|SPEC",
+                     help="Fit in blocks of correlated series × overlapping time windows: "
+                     "'auto' or e.g. 'series=50,window=60D,overlap=3D' (docs/scaling.md)."),
+        click.option("--workers", type=click.IntRange(1), metavar="N",
+                     help="Run the blocks on a local Dask cluster of N workers, one thread each "
+                     "(implies --blocks auto)."),
+        click.option("--scheduler", metavar="ADDRESS",
+                     help="Run the blocks on an existing Dask scheduler, e.g. tcp://host:8786 "
+                     "(implies --blocks auto)."),
+    ]
+    for option in reversed(options):
+        command = option(command)
+    return command
+
+
+#: The parameters :func:`block_options` adds, split off a command's keywords.
+BLOCK_OPTION_NAMES = ("blocks", "workers", "scheduler")
+
+
+def block_settings(kw: dict) -> dict | None:
+    """Pop the block options from ``kw``: None for one fit of the whole panel.
+
+    Raises
+    ------
+    UsageError
+        Both --workers and --scheduler.
+    """
+    given = {name: kw.pop(name) for name in BLOCK_OPTION_NAMES}
+    if given["workers"] is not None and given["scheduler"] is not None:
+        raise UsageError("give --workers (a new local cluster) or --scheduler (an existing "
+                         "one), not both")
+    return None if all(value is None for value in given.values()) else given
+
+
+def plan_and_runner(panel, model, given: dict) -> tuple:
+    """The block plan of ``panel`` and the runner the block options ask for."""
+    from gapband import parallel
+
+    plan = parallel.plan_blocks(panel, **parallel.parse_blocks(given["blocks"] or "auto"),
+                                model=model)
+    if given["workers"] is None and given["scheduler"] is None:
+        return plan, parallel.InProcess()
+    return plan, parallel.DaskRunner(workers=given["workers"], scheduler=given["scheduler"])
+
+
 @cli.command()
 @read_options
 @model_options
@@ -194,19 +242,11 @@ def fill_settings(kw: dict, **rules) -> tuple[Path | None, str | None, FillOptio
 @click.option("--keep-draws", type=click.IntRange(0), default=200, show_default=True,
               metavar="N", help="Joint predictive draws of the filled cells kept in filled.nc "
               "for gapband stats (0: none).")
-@click.option("--blocks", metavar="auto|SPEC",
-              help="Fit in blocks of correlated series × overlapping time windows: 'auto' or "
-              "e.g. 'series=50,window=60D,overlap=3D' (docs/scaling.md).")
-@click.option("--workers", type=click.IntRange(1), metavar="N",
-              help="Run the blocks on a local Dask cluster of N workers, one thread each "
-              "(implies --blocks auto).")
-@click.option("--scheduler", metavar="ADDRESS",
-              help="Run the blocks on an existing Dask scheduler, e.g. tcp://host:8786 "
-              "(implies --blocks auto).")
+@block_options
 @click.option("--overwrite", is_flag=True, help="Replace existing outputs in --out.")
 @handle_errors
 def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width, max_gap, table,
-         keep_draws, blocks, workers, scheduler, overwrite, **kw):
+         keep_draws, overwrite, **kw):
     """Fill every missing cell of INPUT with a credible interval and a flag."""
     from gapband import filling
     from gapband.outputs import prepare_dir
@@ -214,17 +254,18 @@ def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width,
     model, transform, options = fill_settings(kw, level=flag_level, max_width=max_width,
                                               max_rel_width=max_rel_width, max_gap=max_gap)
     options.keep_draws = keep_draws
-    if workers is not None and scheduler is not None:
-        raise UsageError("give --workers (a new local cluster) or --scheduler (an existing "
-                         "one), not both")
+    blocks = block_settings(kw)
     prepare_dir(out_dir, ["filled.nc", f"filled.{table}", "summary.json"], overwrite)
     panel = gapband.read(input_path, **kw)
-    if blocks is None and workers is None and scheduler is None:
+    if blocks is None:
         result, summary = filling.fill(panel, model=model, transform=transform,
                                        options=options, calibration=calibration)
     else:
-        result, summary = fill_in_blocks(panel, blocks or "auto", workers, scheduler, model,
-                                         transform, options, calibration)
+        from gapband.parallel import fill_blocks
+
+        plan, runner = plan_and_runner(panel, model, blocks)
+        result, summary = fill_blocks(panel, plan, model=model, transform=transform,
+                                      options=options, calibration=calibration, runner=runner)
     written = filling.write_fill(result, summary, out_dir, table=table, overwrite=True)
     for warning in summary["diagnostics"].get("warnings", []):
         errors.print(f"[bold yellow]warning:[/] {escape(warning)}", highlight=False)
@@ -238,20 +279,6 @@ def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width,
     )
     for path in written:
         console.print(f"wrote {path}", highlight=False)
-
-
-def fill_in_blocks(panel, blocks: str, workers: int | None, scheduler: str | None, model,
-                   transform, options, calibration) -> tuple:
-    """Fill block by block (:mod:`gapband.parallel`), on Dask when asked."""
-    from gapband import parallel
-
-    plan = parallel.plan_blocks(panel, **parallel.parse_blocks(blocks), model=model)
-    if workers is None and scheduler is None:
-        runner = parallel.InProcess()
-    else:
-        runner = parallel.DaskRunner(workers=workers, scheduler=scheduler)
-    return parallel.fill_blocks(panel, plan, model=model, transform=transform,
-                                options=options, calibration=calibration, runner=runner)
 
 
 def parse_baselines(ctx, param, text: str) -> tuple[str, ...]:
@@ -283,6 +310,7 @@ def parse_baselines(ctx, param, text: str) -> tuple[str, ...]:
 @click.option("--baselines", "baseline_names", callback=parse_baselines,
               default="linear,seasonal,kalman", show_default=True,
               help="Baselines scored on the same hidden cells (comma-separated; '' for none).")
+@block_options
 @click.option("--overwrite", is_flag=True, help="Replace an existing holdout.json in --out.")
 @handle_errors
 def holdout(input_path, out_dir, scheme, fraction, repeats, baseline_names, overwrite, **kw):
@@ -291,10 +319,13 @@ def holdout(input_path, out_dir, scheme, fraction, repeats, baseline_names, over
     from gapband.outputs import prepare_dir
 
     model, transform, options = fill_settings(kw)
+    blocks = block_settings(kw)
     prepare_dir(out_dir, ["holdout.json"], overwrite)
     panel = gapband.read(input_path, **kw)
+    plan, runner = (None, None) if blocks is None else plan_and_runner(panel, model, blocks)
     report = run(panel, model=model, transform=transform, options=options, scheme=scheme,
-                 fraction=fraction, repeats=repeats, baseline_names=baseline_names)
+                 fraction=fraction, repeats=repeats, baseline_names=baseline_names, plan=plan,
+                 runner=runner)
     path = write(report, out_dir, overwrite=True)
     console.print(scores_table(report))
     factors = report["widening"]["factors"]
@@ -309,9 +340,12 @@ def scores_table(report: dict) -> Table:
     settings = report["settings"]
     levels = [f"{level:g}" for level in settings["levels"]]
     hidden = sum(r["hidden_total"] for r in report["repeats"])
+    # Block-wise runs only: hidden cells the blocks left unfilled.
+    unscored = sum(r["not_scored"]["total"] for r in report["repeats"] if "not_scored" in r)
     table = Table(
         title=f"{escape(str(report['source']))}: {settings['scheme']} holdout, "
-        f"{hidden} cells hidden over {settings['repeats']} repeat(s)",
+        f"{hidden} cells hidden over {settings['repeats']} repeat(s)"
+        + (f", {unscored} of them not scored (left unfilled by the blocks)" if unscored else ""),
         caption="coverage: share of hidden values inside the central interval; "
         "CRPS, MAE, RMSE in data units (smaller is better)",
     )

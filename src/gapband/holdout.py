@@ -1,11 +1,12 @@
 """Proof of calibration: hide observed cells, refit, score, and derive widening factors.
 
 :func:`mask` hides observed cells in a pattern like real gaps; :func:`run`
-refits the model on each masked Panel (K repeats), scores the hidden cells
-with the model's predictive draws and with the baselines
-(:mod:`gapband.baselines`), and derives per-level widening factors
-(:func:`widening_factor`) that ``gapband fill --calibration`` applies.
-:func:`write` saves the report as ``holdout.json``.
+refits the model on each masked Panel (K repeats), in one fit or block by
+block (:mod:`gapband.parallel`), scores the hidden cells with the model's
+predictive draws and with the baselines (:mod:`gapband.baselines`), and
+derives per-level widening factors (:func:`widening_factor`) that
+``gapband fill --calibration`` applies. :func:`write` saves the report as
+``holdout.json``.
 
 Masking schemes (only observed cells are hidden; series with fewer than
 ``min_observed`` observations are never filled, so never scored):
@@ -29,19 +30,20 @@ import dataclasses
 import logging
 import math
 import time
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
-from typing import Literal
+from typing import TYPE_CHECKING, Literal
 
 import numpy as np
 import pandas as pd
 import xarray as xr
 
 from gapband import baselines, outputs, scores
-from gapband.errors import InputError, UsageError
+from gapband.errors import FitError, InputError, UsageError
 from gapband.filling import (
     CALIBRATION_FORMAT,
     CALIBRATION_VERSION,
+    DEFAULT_KEEP_DRAWS,
     FillOptions,
     Fitted,
     check_levels,
@@ -53,6 +55,9 @@ from gapband.filling import (
 from gapband.flags import MIN_OBSERVED
 from gapband.panel import GAP_BINS, gap_runs, run_lengths
 from gapband.spec import ModelSpec
+
+if TYPE_CHECKING:
+    from gapband.parallel import BlockPlan, Runner
 
 log = logging.getLogger(__name__)
 
@@ -189,6 +194,8 @@ def run(
     fraction: float = DEFAULT_FRACTION,
     repeats: int = 1,
     baseline_names: Sequence[str] = baselines.DEFAULT_NAMES,
+    plan: BlockPlan | None = None,
+    runner: Runner | None = None,
 ) -> dict:
     """Hide, refit, score and derive widening factors; return the ``holdout.json`` content.
 
@@ -206,6 +213,19 @@ def run(
     baseline_names : sequence of str
         Baselines to score on the same cells: any of "linear", "seasonal",
         "kalman", "dfm" (default: all but "dfm").
+    plan : BlockPlan, optional
+        Refit each masked Panel block by block, as ``gapband fill --blocks``
+        does (:func:`gapband.parallel.fill_blocks`; the plan from
+        :func:`gapband.parallel.plan_blocks` on ``panel``; block i of repeat
+        k with seed ``options.seed + k × blocks + i``), and score the hidden
+        cells with the merged result's ``options.keep_draws`` joint draws.
+        Hidden cells the blocks leave unfilled (a failed or skipped block, a
+        series with fewer than ``min_observed`` observations in a window) are
+        scored by no predictor, counted per repeat under ``not_scored`` and
+        logged.
+    runner : InProcess or DaskRunner, optional
+        Where the blocks run (default :class:`gapband.parallel.InProcess`);
+        only with ``plan``.
 
     Returns
     -------
@@ -216,6 +236,8 @@ def run(
     ------
     UsageError, InputError, SpecError
         Bad settings, a Panel that cannot be masked, or a bad spec.
+    FitError
+        With ``plan``: no hidden cell of any repeat was filled.
     """
     started = time.perf_counter()
     options = options or FillOptions()
@@ -229,10 +251,19 @@ def run(
         raise UsageError(f"unknown baseline {unknown[0]!r}; choose from "
                          f"{', '.join(baselines.NAMES)} (--baselines)")
     baselines.check(baseline_names, panel)
+    if plan is None and runner is not None:
+        raise UsageError("a runner runs blocks: give the block plan too "
+                         "(gapband.parallel.plan_blocks)")
+    if plan is not None:
+        from gapband.parallel import InProcess  # imported (with scipy clustering) for blocks only
+
+        _check_kept_draws(options.keep_draws)
+        runner = runner or InProcess()
     spec, spec_label = resolve_spec(panel, model, transform)
-    log.info("holdout: %s masks, fraction %g, %d repeat(s); model: %s", scheme, fraction,
-             repeats, spec_label)
+    log.info("holdout: %s masks, fraction %g, %d repeat(s)%s; model: %s", scheme, fraction,
+             repeats, "" if plan is None else f", {len(plan.blocks)} blocks each", spec_label)
     truth = panel["value"].transpose("series", "time").values
+    n_time = panel.sizes["time"]
     predictors = (PREDICTOR, *baseline_names)
     pooled: dict[str, list[dict]] = {name: [] for name in predictors}
     positions: list[tuple[np.ndarray, np.ndarray]] = []
@@ -242,19 +273,36 @@ def run(
                       min_observed=options.rules.min_observed)
         masked = panel.copy()
         masked["value"] = panel["value"].where(~hidden.hidden)
-        fitted = fit_panel(masked, model=spec,
-                           options=dataclasses.replace(options, seed=options.seed + repeat))
         series, steps = np.nonzero(hidden.hidden.values)
+        if plan is None:
+            fitted = fit_panel(masked, model=spec,
+                               options=dataclasses.replace(options, seed=options.seed + repeat))
+            to_fit, refit = fitted.panel, _fit_record(fitted)
+        else:
+            seeded = dataclasses.replace(options, seed=options.seed + repeat * len(plan.blocks))
+            result, refit = _refit_in_blocks(masked, plan, spec, seeded, runner)
+            filled = np.isin(series * n_time + steps, result["missing_cell"].values)
+            refit["not_scored"] = _not_scored(panel, series[~filled])
+            series, steps = series[filled], steps[filled]
+            to_fit = fittable(masked, options.rules.min_observed)
         y = truth[series, steps]
-        rows = pd.Index(fitted.panel["series"].values).get_indexer(panel["series"].values)
-        cells = rows[series] * panel.sizes["time"] + steps
-        pooled[PREDICTOR].append(_model_scores(fitted, y, cells, levels, options.seed + repeat))
-        for name in baseline_names:
-            pooled[name].append(_baseline_scores(name, fitted.panel, spec, y, cells, levels))
-        runs = run_lengths(np.isnan(masked["value"].transpose("series", "time").values))
-        positions.append((series, runs[series, steps]))
-        repeat_records.append(_repeat_record(panel, repeat, hidden, fitted))
-        log.info("repeat %d of %d: %d cells hidden and scored", repeat + 1, repeats, y.size)
+        rows = pd.Index(to_fit["series"].values).get_indexer(panel["series"].values)
+        cells = rows[series] * n_time + steps
+        repeat_records.append(_repeat_record(panel, repeat, hidden, refit))
+        if y.size:
+            pooled[PREDICTOR].append(
+                _model_scores(fitted, y, cells, levels, options.seed + repeat) if plan is None
+                else _kept_scores(result, y, series * n_time + steps, levels))
+            for name in baseline_names:
+                pooled[name].append(_baseline_scores(name, to_fit, spec, y, cells, levels))
+            runs = run_lengths(np.isnan(masked["value"].transpose("series", "time").values))
+            positions.append((series, runs[series, steps]))
+        log.info("repeat %d of %d: %d cells hidden, %d scored", repeat + 1, repeats,
+                 repeat_records[-1]["hidden_total"], y.size)
+    if not positions:
+        raise FitError("no hidden cell of any repeat was filled: the blocks that hold them "
+                       "failed or were skipped (their errors are in the log); fix the cause, "
+                       "use larger blocks, or run the holdout without blocks")
 
     series = np.concatenate([s for s, _ in positions])
     runs = np.concatenate([r for _, r in positions])
@@ -266,6 +314,16 @@ def run(
                 for name, parts in pooled.items()}
     observed = ~np.isnan(truth)
     not_scored = observed.sum(axis=1) < options.rules.min_observed
+    settings = {
+        "scheme": scheme, "fraction": fraction, "repeats": repeats, "seed": options.seed,
+        "method": options.method, "draws": options.draws, "tune": options.tune,
+        "chains": options.chains, "levels": list(levels),
+        "min_observed": options.rules.min_observed, "spec": spec_label,
+        "spec_detail": spec.to_dict(), "baselines": list(baseline_names),
+    }
+    if plan is not None:
+        settings["blocks"] = {**plan.describe(panel), "runner": type(runner).__name__,
+                              "keep_draws": options.keep_draws}
     return {
         "format": CALIBRATION_FORMAT,
         "format_version": CALIBRATION_VERSION,
@@ -274,13 +332,7 @@ def run(
         "step": panel.attrs.get("step"),
         "start": pd.Timestamp(panel["time"].values[0]).isoformat(),
         "end": pd.Timestamp(panel["time"].values[-1]).isoformat(),
-        "settings": {
-            "scheme": scheme, "fraction": fraction, "repeats": repeats, "seed": options.seed,
-            "method": options.method, "draws": options.draws, "tune": options.tune,
-            "chains": options.chains, "levels": list(levels),
-            "min_observed": options.rules.min_observed, "spec": spec_label,
-            "spec_detail": spec.to_dict(), "baselines": list(baseline_names),
-        },
+        "settings": settings,
         "repeats": repeat_records,
         "series_not_scored": [str(s) for s in panel["series"].values[not_scored]],
         "scores": {name: scores.breakdown(cells_of[name], levels, groups)
@@ -478,12 +530,58 @@ def _model_scores(fitted: Fitted, y: np.ndarray, cells: np.ndarray,
     from gapband.predict import Predictive  # PyMC is imported only when a fit runs
 
     predictive = Predictive.of(fitted.fit, fitted.panel, seed=seed)
-    parts = [
-        scores.score_draws(y[i : i + CHUNK_CELLS], predictive.draws(cells[i : i + CHUNK_CELLS]),
-                           levels)
-        for i in range(0, cells.size, CHUNK_CELLS)
-    ]
+    return _score_chunks(y, lambda part: predictive.draws(cells[part]), levels)
+
+
+def _kept_scores(result: xr.Dataset, y: np.ndarray, cells: np.ndarray,
+                 levels: Sequence[float]) -> dict:
+    """Per-cell scores of a block fill's kept joint draws at flat ``cells`` of the Panel."""
+    draws = result["fill_draws"]
+    return _score_chunks(
+        y, lambda part: draws.sel(missing_cell=cells[part]).values.astype("float64"), levels)
+
+
+def _score_chunks(y: np.ndarray, draws_of: Callable[[slice], np.ndarray],
+                  levels: Sequence[float]) -> dict:
+    """Per-cell scores, :data:`CHUNK_CELLS` cells at a time; ``draws_of(part)``: (draws, cells)."""
+    parts = [scores.score_draws(y[part], draws_of(part), levels)
+             for part in (slice(i, i + CHUNK_CELLS) for i in range(0, y.size, CHUNK_CELLS))]
     return {"truth": y, **{k: np.concatenate([p[k] for p in parts]) for k in parts[0]}}
+
+
+def _check_kept_draws(keep: object) -> None:
+    if isinstance(keep, bool) or not isinstance(keep, int | np.integer) or keep < 1:
+        raise UsageError(f"keep_draws = {keep!r}: a block-wise holdout scores the hidden cells "
+                         "with the joint draws the blocks keep, so it needs a whole number of at "
+                         f"least 1 (default {DEFAULT_KEEP_DRAWS})")
+
+
+def _refit_in_blocks(masked: xr.Dataset, plan: BlockPlan, spec: ModelSpec,
+                     options: FillOptions, runner: Runner) -> tuple[xr.Dataset, dict]:
+    """Fill the masked Panel block by block; the merged result and the repeat's block record."""
+    from gapband.parallel import fill_blocks
+
+    started = time.perf_counter()
+    result, summary = fill_blocks(masked, plan, model=spec, options=options, runner=runner)
+    runs = summary["blocks"]["runs"]
+    return result, {"blocks": {
+        "seconds": round(time.perf_counter() - started, 2),
+        "failed": summary["failed_blocks"],
+        "skipped": [r["name"] for r in runs if r["status"] == "skipped"],
+        "diagnostics": summary["diagnostics"],
+        "runs": runs,
+    }}
+
+
+def _not_scored(panel: xr.Dataset, series: np.ndarray) -> dict:
+    """Hidden cells left unfilled by the blocks, per series (row positions ``series``)."""
+    counts = np.bincount(series, minlength=panel.sizes["series"])
+    names = [str(s) for s in panel["series"].values]
+    if series.size:
+        log.warning("%d hidden cells are not scored: the blocks left them unfilled (failed or "
+                    "skipped blocks, or too few observations in a window)", series.size)
+    return {"total": int(series.size),
+            "series": {name: int(c) for name, c in zip(names, counts, strict=True) if c}}
 
 
 def _baseline_scores(name: str, panel: xr.Dataset, spec: ModelSpec, y: np.ndarray,
@@ -496,11 +594,10 @@ def _baseline_scores(name: str, panel: xr.Dataset, spec: ModelSpec, y: np.ndarra
     return {"truth": y, **scores.score_point(y, point)}
 
 
-def _repeat_record(panel: xr.Dataset, repeat: int, hidden: Mask, fitted: Fitted) -> dict:
+def _repeat_record(panel: xr.Dataset, repeat: int, hidden: Mask, refit: dict) -> dict:
     counts = hidden.hidden.sum("time").values
     observed = panel["value"].notnull().sum("time").values
     in_scope = counts > 0
-    diagnostics = fitted.fit.diagnostics
     return {
         "repeat": repeat,
         "hidden": {str(s): int(c) for s, c in zip(panel["series"].values, counts, strict=True)
@@ -508,6 +605,13 @@ def _repeat_record(panel: xr.Dataset, repeat: int, hidden: Mask, fitted: Fitted)
         "hidden_total": int(counts.sum()),
         "hidden_fraction": round(float(counts.sum() / observed[in_scope].sum()), 4),
         **hidden.details,
+        **refit,
+    }
+
+
+def _fit_record(fitted: Fitted) -> dict:
+    diagnostics = fitted.fit.diagnostics
+    return {
         "fit_seconds": round(fitted.seconds, 2),
         "converged": diagnostics.get("converged"),
         "warnings": diagnostics.get("warnings", []),
