@@ -1,4 +1,4 @@
-"""Exact block-Gibbs sampler for the gapband model (numpy and scipy only).
+"""Exact block-Gibbs sampler for the gapband model (numpy, scipy and numba kernels).
 
 The model and its priors are those of :mod:`gapband.model`, unchanged (HalfNormal
 priors on every sd, Uniform priors on the AR coefficients' partial
@@ -167,7 +167,7 @@ class _Sampler:
         # scales, shared by the next two blocks (their weights are unchanged).
         factor, loading_posterior = (self._own_collapsed(s, tuning) if self.spec.own_ar
                                      else (None, None))
-        self._loadings(s, factor, loading_posterior)
+        self._loadings(s, loading_posterior)
         self._paths(s, factor)
         if self.spec.noise == "student_t":
             self._weights(s)
@@ -430,22 +430,22 @@ class _Sampler:
             return target, None
         return target, np.concatenate(paths, axis=0)
 
-    def _loadings(self, s: _State, factor: StackedAr1 | None = None,
-                  posterior: tuple[np.ndarray, np.ndarray] | None = None) -> None:
+    def _loadings(self, s: _State, posterior: tuple[np.ndarray, np.ndarray] | None = None,
+                  ) -> None:
         """Each series' loadings: Bayesian linear regression on the paths, batched.
 
         With own AR(1) paths, these are integrated out (see
-        :func:`_loading_posterior`); ``factor`` is their factorised precision
-        and ``posterior`` the regression's canonical parameters, when known.
+        :func:`_own_marginal`); ``posterior`` is the regression's canonical
+        parameters, when known.
         """
         target, design = self._regression(s)
         if design is None:
             return
-        if posterior is None:
-            weight = self._cell_weight(s)
-            if self.spec.own_ar and factor is None:
-                factor = StackedAr1.of(s.own_sd, s.own_rho, weight)
-            posterior = _loading_posterior(target, design, weight, factor,
+        if posterior is None and self.spec.own_ar:
+            posterior = _own_marginal(target, self.seen * s.weight, s.own_sd, s.own_rho,
+                                      s.noise, design, self.spec.priors.loading)[2]
+        elif posterior is None:
+            posterior = _loading_posterior(target, design, self._cell_weight(s),
                                            self.spec.priors.loading)
         drawn = _draw_dense(*posterior, self.rng)
         if self.spec.fixed.loading is None:
@@ -850,9 +850,8 @@ def _add(ab: np.ndarray, rows: np.ndarray, cols: np.ndarray, values) -> None:
 
 
 def _loading_posterior(target: np.ndarray, design: np.ndarray, weight: np.ndarray,
-                       factor: StackedAr1 | None, prior: float,
-                       solved: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """Canonical parameters of each series' loadings given the paths, own path integrated out.
+                       prior: float) -> tuple[np.ndarray, np.ndarray]:
+    """Canonical parameters of each series' loadings given the paths, without own paths.
 
     Parameters
     ----------
@@ -861,48 +860,21 @@ def _loading_posterior(target: np.ndarray, design: np.ndarray, weight: np.ndarra
         The regressors, shared by all series.
     weight : ndarray, shape (N, T)
         Observation precision (0 where unobserved).
-    factor : StackedAr1 or None
-        The factorised Q + W (own AR(1) precision plus ``weight``); None
-        without own paths.
     prior : float
         Prior sd of every loading (Normal(0, prior²)).
-    solved : ndarray, shape (k + 1, N, T), optional
-        ``(Q + W)⁻¹`` applied to :func:`_weighted_columns`, when already known.
 
     Returns
     -------
     precision : ndarray, shape (N, k, k)
-        ``XᵀK⁻¹X + I/prior²``.
+        ``XᵀWX + I/prior²``.
     rhs : ndarray, shape (N, k)
-        ``XᵀK⁻¹y``; the posterior is N(precision⁻¹·rhs, precision⁻¹).
-
-    Notes
-    -----
-    The regression error is the own path plus noise with covariance K, and
-    ``K⁻¹ = W - W(Q + W)⁻¹W`` (Woodbury), so only tridiagonal solves are
-    needed (Bayesian linear regression: Gelman et al., Bayesian Data
-    Analysis, 3rd ed., 2013, section 14.2).
+        ``XᵀWy``; the posterior is N(precision⁻¹·rhs, precision⁻¹)
+        (Bayesian linear regression: Gelman et al., Bayesian Data Analysis,
+        3rd ed., 2013, section 14.2). With own paths, see :func:`_own_marginal`.
     """
     precision = np.einsum("nt,kt,lt->nkl", weight, design, design, optimize=True)
     rhs = np.einsum("nt,kt->nk", weight * target, design, optimize=True)
-    if factor is not None:
-        if solved is None:
-            solved = factor.solve(_weighted_columns(target, design, weight))
-        correction = np.einsum("nt,kt,lnt->nkl", weight, design, solved, optimize=True)
-        precision -= correction[:, :, :-1]
-        rhs -= correction[:, :, -1]
     return precision + np.eye(design.shape[0]) / prior**2, rhs
-
-
-def _weighted_columns(target: np.ndarray, design: np.ndarray | None,
-                      weight: np.ndarray) -> np.ndarray:
-    """W·x for every regressor x, then W·y: shape (k + 1, N, T)."""
-    k = 0 if design is None else design.shape[0]
-    columns = np.empty((k + 1, *target.shape))
-    if k:
-        np.multiply(weight[None], design[:, None, :], out=columns[:k])
-    np.multiply(weight, target, out=columns[k])
-    return columns
 
 
 def _own_marginal(resid: np.ndarray, base: np.ndarray, sd: np.ndarray, rho: np.ndarray,
@@ -929,34 +901,29 @@ def _own_marginal(resid: np.ndarray, base: np.ndarray, sd: np.ndarray, rho: np.n
     factor : StackedAr1
         The factorised Q + W.
     regression : tuple or None
-        The coefficients' posterior canonical parameters
-        (:func:`_loading_posterior`), when there is a design.
+        The coefficients' posterior canonical parameters, precision
+        ``XᵀK⁻¹X + I/prior²`` (N, k, k) and ``XᵀK⁻¹y`` (N, k), where K is
+        the covariance of path plus noise; None without a design.
 
     Notes
     -----
-    With path precision Q, observation precision W and b = W·r, the
-    marginal log density is ``-r'Wr/2 + b'(Q + W)⁻¹b/2 + (log|W| + log|Q|
-    - log|Q + W|)/2 - n/2·log 2π`` (Rue & Held, 2005, section 2.3: the
-    Gaussian integral). Integrating out coefficients β ~ N(0, s²I) of a
-    regression with posterior precision P and canonical mean c adds
-    ``c'P⁻¹c/2 - log|P|/2 - k·log s`` (the same Gaussian integral).
+    With path precision Q, observation precision W and K⁻¹ = W - W(Q +
+    W)⁻¹W (Woodbury), the marginal log density is ``-y'K⁻¹y/2 + (log|W| +
+    log|Q| - log|Q + W|)/2 - n/2·log 2π`` (Rue & Held, 2005, section 2.3:
+    the Gaussian integral). Integrating out coefficients β ~ N(0, s²I) of
+    a regression with posterior precision P and canonical mean c adds
+    ``c'P⁻¹c/2 - log|P|/2 - k·log s`` (the same Gaussian integral; the
+    posterior is Gelman et al., Bayesian Data Analysis, 3rd ed., 2013,
+    section 14.2, with error covariance K).
     """
     n_time = resid.shape[1]
-    weight = base / noise[:, None] ** 2
-    factor = StackedAr1.of(sd, rho, weight)
-    columns = _weighted_columns(resid, design, weight)
-    solved = factor.solve(columns)
-    seen = base > 0
+    factor, terms = StackedAr1.regress(sd, rho, base, noise**-2.0, resid, design)
     log_q = -n_time * np.log(np.maximum(sd, _TINY) ** 2) - (n_time - 1) * np.log1p(-rho**2)
-    logp = (-0.5 * (weight * resid**2).sum(axis=1)
-            + 0.5 * (columns[-1] * solved[-1]).sum(axis=1)
-            + 0.5 * np.where(seen, np.log(np.where(seen, weight, 1.0)), 0.0).sum(axis=1)
-            + 0.5 * log_q
-            - 0.5 * factor.log_det()
-            - 0.5 * seen.sum(axis=1) * np.log(2.0 * np.pi))
+    logp = 0.5 * (-terms.quadratic + terms.log_weight + log_q - terms.log_det
+                  - terms.observed * np.log(2.0 * np.pi))
     if design is None:
         return logp, factor, None
-    regression = _loading_posterior(resid, design, weight, factor, prior, solved)
+    regression = (terms.gram + np.eye(design.shape[0]) / prior**2, terms.cross)
     chol = np.linalg.cholesky(regression[0])
     half = np.linalg.solve(chol, regression[1][..., None])[..., 0]
     logp += (0.5 * (half**2).sum(axis=1)

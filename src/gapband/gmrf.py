@@ -14,38 +14,13 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.linalg import cholesky_banded
-from scipy.linalg.lapack import dpttrf, dpttrs, dtbtrs
+from scipy.linalg.lapack import dtbtrs
+
+from gapband import kernels
 
 #: Smallest innovation variance used, so a path with sd → 0 or ρ → 1 stays
 #: numerically positive definite.
 _TINY = 1e-10
-
-
-def ar1_band(sd: np.ndarray, rho: np.ndarray, weight: np.ndarray) -> np.ndarray:
-    """Lower banded ``Q + W`` of many AR(1) paths, stacked block-diagonally.
-
-    Parameters
-    ----------
-    sd, rho : ndarray, shape (rows,)
-        Marginal sd and coefficient of each stationary AR(1) path.
-    weight : ndarray, shape (rows, time)
-        Observation precision of each cell (0 where unobserved).
-
-    Returns
-    -------
-    ndarray, shape (2, rows·time)
-        One tridiagonal block per path, without coupling between consecutive
-        paths, so one banded factorisation serves them all in O(rows·time).
-    """
-    rows, n_time = weight.shape
-    inner, end, off = ar1_entries(sd, rho)
-    ab = np.empty((2, rows, n_time))
-    ab[0] = inner[:, None]
-    ab[0, :, [0, -1]] = end
-    ab[1] = off[:, None]
-    ab[1, :, -1] = 0.0
-    ab[0] += weight
-    return ab.reshape(2, -1)
 
 
 def ar1_entries(sd: np.ndarray, rho: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -64,9 +39,10 @@ class StackedAr1:
     """``Q + W`` of many AR(1) paths seen through noise, factorised once as L·D·Lᵀ.
 
     Q is each path's stationary AR(1) precision and W the observation
-    precision of its cells; the paths are stacked, so one tridiagonal
-    factorisation (LAPACK dpttrf) serves all of them in O(rows·time), and
-    rows can be swapped between two factorisations (:meth:`where`).
+    precision of its cells; the paths are stacked, and each row is
+    factorised and solved in turn by compiled loops (:mod:`gapband.kernels`,
+    LAPACK's dpttrf/dpttrs recurrences) in O(rows·time). Rows can be
+    swapped between two factorisations (:meth:`where`).
     """
 
     diagonal: np.ndarray  # D, shape (rows, time)
@@ -75,41 +51,89 @@ class StackedAr1:
     @classmethod
     def of(cls, sd: np.ndarray, rho: np.ndarray, weight: np.ndarray) -> StackedAr1:
         """Factorise for marginal sds and coefficients (rows,) and weights (rows, time)."""
-        ab = ar1_band(sd, rho, weight)
-        diagonal, lower, info = dpttrf(ab[0], ab[1, :-1])
-        if info:
-            raise np.linalg.LinAlgError(f"tridiagonal factorisation failed (info = {info})")
-        return cls(diagonal.reshape(weight.shape), np.append(lower, 0.0).reshape(weight.shape))
+        factor = cls._empty(weight.shape)
+        _check(kernels.factor(*ar1_entries(sd, rho), _c(weight), factor.diagonal, factor.lower))
+        return factor
+
+    @classmethod
+    def regress(cls, sd: np.ndarray, rho: np.ndarray, base: np.ndarray, scale: np.ndarray,
+                resid: np.ndarray, design: np.ndarray | None) -> tuple[StackedAr1, Regression]:
+        """Factorise, and sum what a regression with the AR(1) path as error needs.
+
+        Parameters
+        ----------
+        sd, rho : ndarray, shape (rows,)
+            The paths' marginal sds and coefficients.
+        base, scale : ndarray, shapes (rows, time) and (rows,)
+            Observation precision ``W = base·scale`` (``base`` 0 where unobserved).
+        resid : ndarray, shape (rows, time)
+            What the regressors and the path explain (any value where unobserved).
+        design : ndarray, shape (k, time), or None
+            Regressors shared by every row.
+        """
+        factor = cls._empty(resid.shape)
+        design = np.zeros((0, resid.shape[1])) if design is None else _c(design)
+        k, rows = design.shape[0], resid.shape[0]
+        products, sums = np.empty((rows, k + 1, k + 1)), np.empty((rows, 3))
+        _check(kernels.regression_terms(*ar1_entries(sd, rho), _c(resid), _c(base), _c(scale),
+                                        design, factor.diagonal, factor.lower, products, sums))
+        gram = products[:, :k, :k]
+        return factor, Regression(0.5 * (gram + gram.transpose(0, 2, 1)), products[:, :k, k],
+                                  products[:, k, k], *sums.T)
+
+    @classmethod
+    def _empty(cls, shape: tuple[int, int]) -> StackedAr1:
+        return cls(np.empty(shape), np.empty(shape))
 
     def solve(self, b: np.ndarray) -> np.ndarray:
         """(Q + W)⁻¹·b for b of shape (rows, time) or (k, rows, time) (k right-hand sides)."""
-        # (k, rows·time) in C order is (rows·time, k) in the Fortran order LAPACK wants.
-        columns = b.reshape(-1, self.diagonal.size).T
-        x, info = dpttrs(self.diagonal.ravel(), self.lower.ravel()[:-1], columns)
-        if info:
-            raise np.linalg.LinAlgError(f"tridiagonal solve failed (info = {info})")
-        return x.T.reshape(b.shape)
+        columns = _c(b.reshape(-1, *self.diagonal.shape))
+        x = np.empty_like(columns)
+        kernels.solve(self.diagonal, self.lower, columns, x)
+        return x.reshape(b.shape)
 
     def log_det(self) -> np.ndarray:
         """log|Q + W| of each row's block, shape (rows,)."""
         return np.log(self.diagonal).sum(axis=1)
 
     def draw(self, rhs: np.ndarray, rng: np.random.Generator) -> np.ndarray:
-        """One draw of x ~ N((Q + W)⁻¹·rhs, (Q + W)⁻¹), rhs of shape (rows, time).
-
-        ``x = (Q + W)⁻¹(rhs + L·D^½·z)``: the added term has covariance
-        L·D·Lᵀ = Q + W, so x has covariance (Q + W)⁻¹ (Rue & Held, 2005,
-        section 2.4, with the factorisation in L·D·Lᵀ form).
-        """
-        y = np.sqrt(self.diagonal) * rng.standard_normal(rhs.shape)
-        y[:, 1:] += self.lower[:, :-1] * y[:, :-1]
-        return self.solve(rhs + y)
+        """One draw of x ~ N((Q + W)⁻¹·rhs, (Q + W)⁻¹), rhs of shape (rows, time)."""
+        x = np.empty(rhs.shape)
+        kernels.draw(self.diagonal, self.lower, _c(rhs), rng.standard_normal(rhs.shape), x)
+        return x
 
     def where(self, rows: np.ndarray, other: StackedAr1) -> StackedAr1:
         """A copy with the blocks of ``rows`` (bool, shape (rows,)) taken from ``other``."""
         pick = rows[:, None]
         return StackedAr1(np.where(pick, other.diagonal, self.diagonal),
                           np.where(pick, other.lower, self.lower))
+
+
+@dataclass(frozen=True)
+class Regression:
+    """Per-row terms of y = X·β + path + noise with the AR(1) path integrated out.
+
+    The error's precision is ``K⁻¹ = W - W(Q + W)⁻¹W`` (Woodbury), so each
+    term costs tridiagonal solves only (:meth:`StackedAr1.regress`).
+    """
+
+    gram: np.ndarray  # XᵀK⁻¹X, shape (rows, k, k)
+    cross: np.ndarray  # XᵀK⁻¹y, shape (rows, k)
+    quadratic: np.ndarray  # yᵀK⁻¹y, shape (rows,)
+    log_det: np.ndarray  # log|Q + W|, shape (rows,)
+    log_weight: np.ndarray  # the sum of log W over observed cells, shape (rows,)
+    observed: np.ndarray  # observed cells, shape (rows,)
+
+
+def _c(a: np.ndarray) -> np.ndarray:
+    """``a`` as a C-contiguous float64 array (the kernels' layout), copied only when needed."""
+    return np.ascontiguousarray(a, dtype=np.float64)
+
+
+def _check(failed_row: int) -> None:
+    if failed_row >= 0:
+        raise np.linalg.LinAlgError(
+            f"tridiagonal factorisation failed in row {failed_row} (a pivot is not positive)")
 
 
 def draw_ar1_given_noisy(

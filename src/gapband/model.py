@@ -141,8 +141,9 @@ def build(panel: xr.Dataset, spec: ModelSpec) -> BuiltModel:
         if spec.own_ar:
             mu = mu + _own(spec, n_series)
         noise = _scale("noise", spec.priors.noise, spec.fixed.noise, n_series, "series")
-        sigma = noise[observed // n_time]
-        mu_obs = mu.flatten()[observed]
+        # Indices as tensors: indexing with a numpy array inspects every element in Python.
+        sigma = noise[pt.as_tensor(observed // n_time)]
+        mu_obs = mu.flatten()[pt.as_tensor(observed)]
         z_obs = z.ravel()[observed]
         if spec.noise == "student_t":
             pm.StudentT("z", nu=spec.noise_df, mu=mu_obs, sigma=sigma, observed=z_obs)
