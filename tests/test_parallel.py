@@ -391,3 +391,32 @@ def test_fill_command_runs_blocks_and_refuses_two_clusters(gappy, tmp_path):
         main(["fill", *common, "--out", str(tmp_path / "two"), "--workers", "2",
               "--scheduler", "tcp://127.0.0.1:1"])
     assert done.value.code == 2
+
+
+def test_every_block_uses_the_number_of_factors_chosen_on_the_whole_panel(monkeypatch):
+    # A slow factor over the whole record and a daily one: the whole panel
+    # supports one factor, some 8-day windows alone would choose two.
+    from gapband import inference
+    from gapband.model import choose_rank, standardised
+
+    two = spec.parse({"base": "hourly", "rank": 2, "seasonal": [{"period": "1D", "harmonics": 2}]})
+    rng = np.random.default_rng(0)
+    hour = np.arange(24 * 48)
+    slow, daily = 3 * np.sin(2 * np.pi * hour / hour.size), np.sin(2 * np.pi * hour / 24)
+    values = (10 + rng.uniform(0.5, 1.5, (6, 1)) * slow + rng.uniform(-1, 1, (6, 1)) * daily
+              + rng.normal(0, 0.3, (6, hour.size)))
+    values[rng.random(values.shape) < 0.05] = np.nan
+    panel = _panel(values)
+    plan = parallel.plan_blocks(panel, model=two, max_series=6, window="8D", overlap="3D")
+    whole = parallel.whole_panel_rank(panel, two, OPTIONS.rules.min_observed)
+    alone = {choose_rank(standardised(panel.isel(time=slice(*b.window)), two)[0], two)
+             for b in plan.blocks}
+    assert alone - {whole}, "no window alone would choose otherwise: the check proves nothing"
+
+    used = []
+    fit = inference.fit
+    monkeypatch.setattr(inference, "fit", lambda *a, **kw: used.append(kw["rank"]) or fit(*a, **kw))
+    options = filling.FillOptions(draws=20, tune=20, chains=1, seed=0, progress=False)
+    _, summary = parallel.fill_blocks(panel, plan, model=two, options=options)
+    assert used == [whole] * len(plan.blocks)
+    assert summary["blocks"]["rank"] == whole

@@ -71,6 +71,9 @@ class FillOptions:
     rules: FlagRules = field(default_factory=FlagRules)
     progress: bool = True
     keep_draws: int = DEFAULT_KEEP_DRAWS
+    #: Shared factors to use; None: chosen from the data under the spec's
+    #: ``rank`` and ``rank_share``. Blocks take the whole Panel's choice.
+    rank: int | None = None
 
 
 def resolve_spec(
@@ -288,7 +291,7 @@ def fit_panel(
     started = time.perf_counter()
     fitted = inference.fit(
         to_fit, spec, method=options.method, draws=options.draws, tune=options.tune,
-        chains=options.chains, seed=options.seed, progress=options.progress,
+        chains=options.chains, seed=options.seed, progress=options.progress, rank=options.rank,
     )
     return Fitted(fitted, to_fit, spec, spec_label, time.perf_counter() - started)
 
@@ -335,7 +338,7 @@ def check_memory(panel: xr.Dataset, spec: ModelSpec, options: FillOptions) -> No
     estimated = resources.estimate(
         panel.sizes["series"], panel.sizes["time"], n_missing, spec, method=options.method,
         draws=options.draws, chains=options.chains, cores=os.cpu_count() or 1,
-        keep_draws=options.keep_draws, n_levels=len(options.levels),
+        keep_draws=options.keep_draws, n_levels=len(options.levels), rank=options.rank,
     )
     log.info("memory estimate: %s", resources.size_text(estimated.total))
     resources.check(estimated, source=panel.attrs.get("source", "input"), draws=options.draws,

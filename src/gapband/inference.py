@@ -99,6 +99,7 @@ def fit(
     progress: bool = False,
     max_iterations: int = 50_000,
     cores: int | None = None,
+    rank: int | None = None,
 ) -> Fit:
     """Fit the model of a Panel under a spec.
 
@@ -123,6 +124,9 @@ def fit(
     cores : int, optional
         Chains run at once (NUTS, Gibbs); default: as many as there are
         chains and CPUs. 1 runs them one after another in this process.
+    rank : int, optional
+        Shared factors to use; by default chosen from the data under the
+        spec's ``rank`` and ``rank_share`` (:func:`gapband.model.choose_rank`).
 
     Returns
     -------
@@ -143,7 +147,7 @@ def fit(
         if not isinstance(value, int) or value < (0 if name == "tune" else 1):
             raise UsageError(f"{name} = {value!r} must be a positive integer")
     start = time.perf_counter()
-    built = build(panel, spec)
+    built = build(panel, spec, rank)
     timings = {"build": time.perf_counter() - start}
     run = METHODS[method]
     posterior, diagnostics, run_timings = run(

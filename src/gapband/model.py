@@ -90,7 +90,7 @@ class BuiltModel:
     z: np.ndarray
 
 
-def build(panel: xr.Dataset, spec: ModelSpec) -> BuiltModel:
+def build(panel: xr.Dataset, spec: ModelSpec, rank: int | None = None) -> BuiltModel:
     """Build the model of a Panel under a spec.
 
     Parameters
@@ -98,6 +98,9 @@ def build(panel: xr.Dataset, spec: ModelSpec) -> BuiltModel:
     panel : Dataset
         A Panel (dims ``("series", "time")``, variable ``value``).
     spec : ModelSpec
+    rank : int, optional
+        Shared factors to use (at most the number of series); by default
+        chosen from the data (:func:`choose_rank`).
 
     Returns
     -------
@@ -117,11 +120,9 @@ def build(panel: xr.Dataset, spec: ModelSpec) -> BuiltModel:
                        f"ar_order + 1 = {spec.ar_order + 1}")
     if not panel["value"].notnull().any():
         raise FitError("the panel has no observed value; there is nothing to fit")
-    transformed = forward(panel["value"].values, spec.transform)
-    mean, scale = _standardisation(transformed, spec.standardise)
-    z = (transformed - mean[:, None]) / scale[:, None]
+    z, mean, scale = standardised(panel, spec)
     observed = np.flatnonzero(~np.isnan(z.ravel()))
-    rank = choose_rank(z, spec)
+    rank = choose_rank(z, spec) if rank is None else min(rank, n_series)
     ar_factors = min(spec.ar_factors, n_series)
     fourier = _fourier(panel, spec)
 
@@ -181,6 +182,18 @@ def inverse(values: np.ndarray, transform: Transform) -> np.ndarray:
     if transform == "log1p":
         return np.expm1(values)
     return values
+
+
+def standardised(panel: xr.Dataset, spec: ModelSpec) -> tuple[np.ndarray, np.ndarray,
+                                                               np.ndarray]:
+    """The Panel's values transformed and standardised as the model sees them.
+
+    Returns z (series, time), NaN where missing, and each series' mean and
+    scale (series,) in transformed units.
+    """
+    transformed = forward(panel["value"].transpose("series", "time").values, spec.transform)
+    mean, scale = _standardisation(transformed, spec.standardise)
+    return (transformed - mean[:, None]) / scale[:, None], mean, scale
 
 
 def choose_rank(z: np.ndarray, spec: ModelSpec) -> int:
