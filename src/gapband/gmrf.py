@@ -40,9 +40,9 @@ class StackedAr1:
 
     Q is each path's stationary AR(1) precision and W the observation
     precision of its cells; the paths are stacked, and each row is
-    factorised and solved in turn by compiled loops (:mod:`gapband.kernels`,
-    LAPACK's dpttrf/dpttrs recurrences) in O(rows·time). Rows can be
-    swapped between two factorisations (:meth:`where`).
+    factorised, drawn and solved in turn by compiled loops
+    (:mod:`gapband.kernels`, LAPACK's dpttrf/dpttrs recurrences) in
+    O(rows·time). Rows can be swapped between two factorisations (:meth:`where`).
     """
 
     diagonal: np.ndarray  # D, shape (rows, time)
@@ -84,17 +84,6 @@ class StackedAr1:
     @classmethod
     def _empty(cls, shape: tuple[int, int]) -> StackedAr1:
         return cls(np.empty(shape), np.empty(shape))
-
-    def solve(self, b: np.ndarray) -> np.ndarray:
-        """(Q + W)⁻¹·b for b of shape (rows, time) or (k, rows, time) (k right-hand sides)."""
-        columns = _c(b.reshape(-1, *self.diagonal.shape))
-        x = np.empty_like(columns)
-        kernels.solve(self.diagonal, self.lower, columns, x)
-        return x.reshape(b.shape)
-
-    def log_det(self) -> np.ndarray:
-        """log|Q + W| of each row's block, shape (rows,)."""
-        return np.log(self.diagonal).sum(axis=1)
 
     def draw(self, rhs: np.ndarray, rng: np.random.Generator) -> np.ndarray:
         """One draw of x ~ N((Q + W)⁻¹·rhs, (Q + W)⁻¹), rhs of shape (rows, time)."""

@@ -59,24 +59,6 @@ def factor(inner, end, off, weight, diagonal, lower):
     return -1
 
 
-@_jit("void(float64[:, ::1], float64[:, ::1], float64[:, :, ::1], float64[:, :, ::1])")
-def solve(diagonal, lower, b, x):
-    """Solve L·D·Lᵀ·x = b for every right-hand side: ``b`` and ``x`` of shape (k, rows, time)."""
-    columns, rows, n_time = b.shape
-    for i in range(rows):
-        for j in range(columns):
-            u = b[j, i, 0]
-            x[j, i, 0] = u
-            for t in range(1, n_time):
-                u = b[j, i, t] - lower[i, t - 1] * u
-                x[j, i, t] = u
-            v = x[j, i, n_time - 1] / diagonal[i, n_time - 1]
-            x[j, i, n_time - 1] = v
-            for t in range(n_time - 2, -1, -1):
-                v = x[j, i, t] / diagonal[i, t] - lower[i, t] * v
-                x[j, i, t] = v
-
-
 @_jit("void(float64[:, ::1], float64[:, ::1], float64[:, ::1], float64[:, ::1], "
       "float64[:, ::1])")
 def draw(diagonal, lower, rhs, z, x):
