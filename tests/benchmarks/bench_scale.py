@@ -27,7 +27,10 @@ memory grows fast with the number of series: about 27 GB at 100x8760).
 Columns: wall seconds (planning included), CPU seconds of the process tree
 in that time (over the wall seconds: the cores kept busy), peak memory of the whole
 process tree (the benchmark process, its chain processes or Dask workers:
-summed proportional set size, sampled every 0.2 s), cells per second (all
+summed proportional set size, sampled every 0.2 s) and, for one process,
+what docs/scaling.md's formula (``gapband.resources.estimate``, checked
+before every fill; arrays only, not the interpreter and libraries, about
+0.3 GB; it assumes ``rank`` factors) gives, cells per second (all
 N × T cells of the panel over the wall time), MAE of the predictive median,
 CRPS (scoringrules' ensemble estimator on the ``keep_draws`` joint draws the
 fill keeps), coverage of the central 50/80/90/95 % intervals, blocks run and
@@ -53,7 +56,7 @@ import psutil
 import scoringrules
 from bench_fill import panel_and_cells, rows_in_processes, run_one
 
-from gapband import filling, parallel
+from gapband import filling, parallel, resources
 from gapband.outputs import atomic_path
 
 SIZES = ("20x2000", "100x8760", "500x8760", "100x43800", "nyc")
@@ -153,6 +156,8 @@ def run_gapband(size: str, mode: str, args: argparse.Namespace) -> dict:
         "wall_s": round(wall, 1),
         "cpu_s": round(cpu_seconds() - cpu_started, 1),
         "peak_memory_gb": round(memory.peak / 2**30, 2),
+        "estimate_gb": round(memory_estimate(panel, options) / 2**30, 2)
+        if mode == "single" else None,
         "cells_per_s": round(n_cells / wall),
         **blocks,
         "r_hat_max": summary["diagnostics"].get("r_hat_max"),
@@ -169,11 +174,21 @@ def run_reference(size: str, args: argparse.Namespace) -> dict:
     wall = row["fit_s"] + row["predict_s"]
     return {"panel": label(size, panel), "mode": "DynamicFactorMQ",
             "wall_s": wall, "cpu_s": round(cpu_seconds() - cpu_started, 1),
-            "peak_memory_gb": round(memory.peak / 2**30, 2),
+            "peak_memory_gb": round(memory.peak / 2**30, 2), "estimate_gb": None,
             "cells_per_s": round(panel.sizes["series"] * panel.sizes["time"] / max(wall, 1e-9)),
             "blocks": None, "failed": None, "r_hat_max": None, "mae": row["mae"],
             "crps": row["crps"], "coverage": row["coverage"],
             "scored_cells": row["scored_cells"], "not_reached": 0}
+
+
+def memory_estimate(panel, options: filling.FillOptions) -> int:
+    """The bytes docs/scaling.md's formula gives for one process (what the fill checks first)."""
+    spec, _ = filling.resolve_spec(panel, None)
+    return resources.estimate(
+        panel.sizes["series"], panel.sizes["time"], int(panel["value"].isnull().sum()), spec,
+        method=options.method, draws=options.draws, chains=options.chains,
+        cores=os.cpu_count() or 1, keep_draws=options.keep_draws,
+        n_levels=len(options.levels)).total
 
 
 def cpu_seconds() -> float:
@@ -189,7 +204,8 @@ def cpu_seconds() -> float:
 
 def table(rows: list[dict], args: argparse.Namespace) -> str:
     """The Markdown page: settings, the results table, and the targets checked."""
-    head = ["panel", "mode", "wall s", "CPU s", "peak memory GB", "cells/s", "blocks (failed)",
+    head = ["panel", "mode", "wall s", "CPU s", "peak memory GB", "estimate GB", "cells/s",
+            "blocks (failed)",
             "R-hat max", "MAE", "CRPS", *(f"cov {level}" for level in LEVELS), "scored"]
     lines = [
         "# Benchmarks: the fill at scale",
@@ -210,6 +226,7 @@ def table(rows: list[dict], args: argparse.Namespace) -> str:
         r_hat = "" if row["r_hat_max"] is None else f"{row['r_hat_max']:.3f}"
         cells = [row["panel"], row["mode"], f"{row['wall_s']:.1f}", f"{row['cpu_s']:.0f}",
                  f"{row['peak_memory_gb']:.2f}",
+                 "" if row.get("estimate_gb") is None else f"{row['estimate_gb']:.2f}",
                  f"{row['cells_per_s']:,}", blocks, r_hat, f"{row['mae']:.3f}",
                  f"{row['crps']:.3f}", *(f"{row['coverage'][str(lv)]:.3f}" for lv in LEVELS),
                  f"{row['scored_cells']:,}" + (f" (+{row['not_reached']} not filled)"
