@@ -643,8 +643,11 @@ def sample(
     with bar:
         task = bar.add_task("sweeps", total=chains * (tune + draws))
         if cores == 1:
-            results = [job.run(stream, lambda done: bar.advance(task, done))
-                       for stream in streams]
+            # One BLAS thread, as in the chain processes: the sampler's matrix
+            # products are small, and an idle BLAS thread spins on a core.
+            with threadpool_limits(1):
+                results = [job.run(stream, lambda done: bar.advance(task, done))
+                           for stream in streams]
         else:
             results = _run_in_processes(job, streams, cores, lambda done: bar.advance(task, done))
     accepted: dict[str, int] = {}
