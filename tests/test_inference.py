@@ -38,6 +38,9 @@ def test_unknown_method_and_bad_counts():
         inference.fit(panel, spec.parse(SMALL), method="hmc")
     with pytest.raises(UsageError, match=r"draws = 0 must be a positive integer"):
         inference.fit(panel, spec.parse(SMALL), method="advi", draws=0)
+    for rank in (0, 1.5, True):
+        with pytest.raises(UsageError, match=rf"rank = {rank!r} must be a positive integer"):
+            inference.fit(panel, spec.parse(SMALL), method="gibbs", rank=rank)
 
 
 def test_advi_same_seed_same_draws_and_cap_warning():

@@ -146,6 +146,9 @@ def fit(
                         ("max_iterations", max_iterations)):
         if not isinstance(value, int) or value < (0 if name == "tune" else 1):
             raise UsageError(f"{name} = {value!r} must be a positive integer")
+    if rank is not None and (isinstance(rank, bool) or not isinstance(rank, int) or rank < 1):
+        raise UsageError(f"rank = {rank!r} must be a positive integer (or None: chosen from "
+                         "the data)")
     start = time.perf_counter()
     built = build(panel, spec, rank)
     timings = {"build": time.perf_counter() - start}

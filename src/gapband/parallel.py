@@ -601,13 +601,13 @@ def fill_blocks(
     """Fill a Panel block by block and merge the blocks' cores.
 
     Each block is filled by :func:`gapband.filling.fill` with the spec and
-    the number of shared factors (unless ``options.rank`` is given;
-    :func:`whole_panel_rank`) resolved once for the whole Panel, the options given (no progress bars
-    inside blocks) and seed ``options.seed + i`` for the i-th block. Block i
-    answers for its core only. A block whose window gives no series
-    ``min_observed`` observations is skipped; one that raises is run again
-    once, then reported. The cells of a skipped or failed block stay missing
-    and are flagged ``not_filled``.
+    the number of shared factors (:func:`whole_panel_rank`, unless
+    ``options.rank`` is given) resolved once for the whole Panel, the
+    options given (no progress bars inside blocks) and seed
+    ``options.seed + i`` for the i-th block. Block i answers for its core
+    only. A block whose window gives no series ``min_observed`` observations
+    is skipped; one that raises is run again once, then reported. The cells
+    of a skipped or failed block stay missing and are flagged ``not_filled``.
 
     Parameters
     ----------
@@ -717,7 +717,8 @@ def whole_panel_rank(panel: xr.Dataset, spec: ModelSpec, min_observed: int) -> i
     Every block uses this many: a window sees only a stretch of the slow
     factors, and chosen from it alone the rank can fall short of what the
     whole record supports (on a simulated 30 × 43,800 panel with two factors,
-    year-long windows chose one, and their fills' MAE was 11 % higher).
+    windows of half a year and of a year chose one, and the fills' MAE was
+    11 % higher than with the two the whole panel chose).
     """
     from gapband.model import choose_rank, standardised  # PyMC is imported when fits run
 
