@@ -252,10 +252,7 @@ def targets(rows: list[dict]) -> list[str]:
         ratio = (large["wall_s"] / small["wall_s"]) / 5
         out.append(f"- linear cost, 100 → 500 series: time ratio / cell ratio = {ratio:.2f} "
                    f"(target ≤ {TARGET_LINEAR}): {'met' if ratio <= TARGET_LINEAR else 'NOT met'}")
-    for (panel, mode), single in found.items():
-        blocked = found.get((panel, "blocks"))
-        if mode != "single" or not blocked:
-            continue
+    for panel, single, blocked in paired(found, "single", "blocks"):
         speedup = single["wall_s"] / blocked["wall_s"]
         worse = max(blocked["mae"] / single["mae"], blocked["crps"] / single["crps"]) - 1
         ok = speedup >= TARGET_SPEEDUP and worse <= TARGET_SCORE
@@ -265,15 +262,19 @@ def targets(rows: list[dict]) -> list[str]:
                    f"{100 * TARGET_SCORE:.0f} %): {'met' if ok else 'NOT met'}; one process "
                    f"kept {busy:.1f} of {os.cpu_count()} cores busy, so blocks here could be at "
                    f"most {os.cpu_count() / busy:.2f}× faster without doing less work")
-    for (panel, mode), reference in found.items():
-        single = found.get((panel, "single"))
-        if mode != "DynamicFactorMQ" or not single:
-            continue
+    for panel, reference, single in paired(found, "DynamicFactorMQ", "single"):
         faster = reference["wall_s"] / single["wall_s"]
         crps = single["crps"] / reference["crps"] - 1
         out.append(f"- {panel}, against DynamicFactorMQ: gapband {faster:.2f}× as fast, CRPS "
                    f"{100 * crps:+.1f} % (target: faster from 100x8760 up, lower CRPS)")
     return out or ["- (no row speaks to a target in this run)"]
+
+
+def paired(found: dict, mode: str, other: str):
+    """(panel, row in ``mode``, row in ``other``) for each panel that has both rows."""
+    for (panel, kind), row in found.items():
+        if kind == mode and (panel, other) in found:
+            yield panel, row, found[(panel, other)]
 
 
 def main() -> None:
