@@ -212,19 +212,33 @@ def fill(
             f"{unusable} missing cells got no finite predictive summary (values "
             "beyond the float64 range after back-transforming?); they are flagged not_filled. "
             "Rescale the data (e.g. other units) or check the fit's diagnostics")]}
-    result.attrs.update(
-        provenance(fitted.spec, fitted.spec_label, options, levels, fitted.fit.method,
-                   diagnostics)
-    )
+    summary = record_run(result, panel, fitted.spec, fitted.spec_label, options, levels,
+                         fitted.fit.method, diagnostics, widening, timings={
+                             **fitted.fit.timings,
+                             "fit_total_s": round(fitted.seconds, 2),
+                             "predict_s": round(predict_seconds, 2),
+                         })
+    return result, summary
+
+
+def record_run(result: xr.Dataset, panel: xr.Dataset, spec: ModelSpec, spec_label: str,
+               options: FillOptions, levels: tuple[float, ...], method: str, diagnostics: dict,
+               widening: Calibration | None, timings: dict) -> dict:
+    """Record how ``result`` was made in its attributes; return the ``summary.json`` content.
+
+    Shared by :func:`fill` and :func:`gapband.parallel.fill_blocks`, which
+    adds its blocks to both.
+    """
+    result.attrs.update(provenance(spec, spec_label, options, levels, method, diagnostics))
     calibration_record = None if widening is None else widening.record(levels)
     if calibration_record is not None:
         result.attrs["gapband_calibration"] = json.dumps(calibration_record)
-    summary = {
+    return {
         "source": panel.attrs.get("source"),
         "input_sha256": panel.attrs.get("input_sha256"),
-        "method": fitted.fit.method,
-        "approximate": fitted.fit.approximate,
-        "spec": fitted.spec_label,
+        "method": method,
+        "approximate": method == "advi",
+        "spec": spec_label,
         "seed": options.seed,
         "levels": list(levels),
         "flag_rules": dataclasses.asdict(options.rules),
@@ -233,14 +247,9 @@ def fill(
         "capture": capture_before_after(result),
         "flags": flags.flag_counts(result),
         "diagnostics": diagnostics,
-        "timings": {
-            **fitted.fit.timings,
-            "fit_total_s": round(fitted.seconds, 2),
-            "predict_s": round(predict_seconds, 2),
-        },
+        "timings": timings,
         "versions": versions(),
     }
-    return result, summary
 
 
 @dataclass(frozen=True)

@@ -45,15 +45,13 @@ from gapband import flags
 from gapband.errors import FitError, GapbandError, InputError, UsageError
 from gapband.filling import (
     FillOptions,
-    capture_before_after,
     check_levels,
     fill,
     fittable,
     observed_unchanged,
-    provenance,
     read_calibration,
+    record_run,
     resolve_spec,
-    versions,
 )
 from gapband.panel import step_of
 from gapband.spec import ModelSpec
@@ -676,38 +674,18 @@ def fill_blocks(
     _raise_if_none_filled(ordered, options.rules.min_observed)
     merge_started = time.perf_counter()
     result = _merge(panel, blocks, ordered, options)
-    diagnostics = _pooled_diagnostics(ordered)
-    method = options.method
-    result.attrs.update(provenance(spec, spec_label, options, levels, method, diagnostics))
-    result.attrs["gapband_blocks"] = json.dumps(plan.describe(panel))
-    record = None if widening is None else widening.record(levels)
-    if record is not None:
-        result.attrs["gapband_calibration"] = json.dumps(record)
     filled = [o for o in ordered if o.status == "filled"]
-    summary = {
-        "source": panel.attrs.get("source"),
-        "input_sha256": panel.attrs.get("input_sha256"),
-        "method": method,
-        "approximate": method == "advi",
-        "spec": spec_label,
-        "seed": options.seed,
-        "levels": list(levels),
-        "flag_rules": dataclasses.asdict(options.rules),
-        "calibration": record,
-        "capture": capture_before_after(result),
-        "flags": flags.flag_counts(result),
-        "diagnostics": diagnostics,
-        "timings": {
-            "blocks_wall_s": round(merge_started - started, 2),
-            "fit_total_s": round(sum(o.summary["timings"]["fit_total_s"] for o in filled), 2),
-            "predict_s": round(sum(o.summary["timings"]["predict_s"] for o in filled), 2),
-            "merge_s": round(time.perf_counter() - merge_started, 2),
-        },
-        "versions": versions(),
-        "blocks": {**plan.describe(panel), "runner": type(runner).__name__,
-                   "rank": options.rank, "runs": [_run_record(o) for o in ordered]},
-        "failed_blocks": [o.name for o in ordered if o.status == "failed"],
-    }
+    summary = record_run(result, panel, spec, spec_label, options, levels, options.method,
+                         _pooled_diagnostics(ordered), widening, timings={
+        "blocks_wall_s": round(merge_started - started, 2),
+        "fit_total_s": round(sum(o.summary["timings"]["fit_total_s"] for o in filled), 2),
+        "predict_s": round(sum(o.summary["timings"]["predict_s"] for o in filled), 2),
+        "merge_s": round(time.perf_counter() - merge_started, 2),
+    })
+    result.attrs["gapband_blocks"] = json.dumps(plan.describe(panel))
+    summary["blocks"] = {**plan.describe(panel), "runner": type(runner).__name__,
+                         "rank": options.rank, "runs": [_run_record(o) for o in ordered]}
+    summary["failed_blocks"] = [o.name for o in ordered if o.status == "failed"]
     return result, summary
 
 
