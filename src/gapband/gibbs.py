@@ -49,6 +49,7 @@ from __future__ import annotations
 
 import multiprocessing
 import queue
+import signal
 import sys
 import time
 import traceback
@@ -768,7 +769,16 @@ def _run_in_processes(job: _Job, streams, cores: int, advance) -> list[_Chain]:
 
 
 def _run_chains(job: _Job, chains: list[tuple[int, np.random.SeedSequence]], reports) -> None:
-    """Chains in a worker process, on one BLAS thread (the chains share the cores)."""
+    """Chains in a worker process, on one BLAS thread (the chains share the cores).
+
+    The worker leaves interruptions to its parent: it ignores SIGINT (a
+    Ctrl-C reaches the whole process group) and dies quietly on SIGTERM,
+    which is how the parent stops it, instead of running a signal handler
+    inherited from the parent (the command line's raises an exception,
+    whose traceback the dying worker would print).
+    """
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
     with threadpool_limits(1):
         for index, stream in chains:
             try:
