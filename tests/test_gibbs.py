@@ -8,8 +8,8 @@ import pandas as pd
 import pytest
 from scipy import integrate, stats
 
-from gapband import filling, gibbs, inference, predict, spec
-from gapband.errors import UsageError
+from gapband import chains, filling, gibbs, inference, predict, spec
+from gapband.errors import FitError, UsageError
 from gapband.gmrf import draw_banded, draw_bordered
 from gapband.panel import make_panel
 
@@ -230,7 +230,7 @@ def test_same_seed_same_draws_names_match_the_pymc_model():
                                   np.flatnonzero(panel["value"].isnull().values.ravel()))
     assert {"build", "tune", "sample", "diagnostics"} <= set(first.timings)
     assert first.diagnostics["divergences"] == 0
-    assert first.diagnostics["n_draws"] == 60
+    assert first.diagnostics["n_draws"] == 4 * 30  # four chains by default
 
 
 def test_chains_in_processes_give_the_draws_of_one_process():
@@ -239,7 +239,8 @@ def test_chains_in_processes_give_the_draws_of_one_process():
     built = inference.build(panel, small)
     coords = {name: np.asarray(values) for name, values in built.model.coords.items()}
     runs = [gibbs.sample(built.z, built.fourier.values, small, rank=built.rank,
-                         ar_factors=built.ar_factors, coords=coords, draws=15, tune=5,
+                         ar_factors=built.ar_factors, coords=coords,
+                         plan=chains.Plan(tune=5, draws=15, budget=60.0),
                          chains=2, seed=3, cores=cores)
             for cores in (1, 2)]
     assert runs[0][0].equals(runs[1][0])
@@ -294,3 +295,89 @@ def test_gibbs_agrees_with_nuts_on_a_small_panel(record_property):
     np.testing.assert_array_less(np.abs(a["fill_mean"].values[hidden]
                                         - b["fill_mean"].values[hidden]), tolerance)
     np.testing.assert_allclose(b["fill_sd"].values[hidden], sd, rtol=0.15)
+
+
+def test_collapsed_density_has_no_false_mode_as_the_own_sd_vanishes():
+    # Source: white noise y ~ N(0, σ²I) is the limit of an AR(1) path plus that
+    # noise as the path's sd goes to 0 (the path's covariance vanishes), so the
+    # collapsed density must approach scipy's independent-normal density,
+    # within a shrinking distance. The density once used unfloored values
+    # beside a floored factorisation and grew without bound on such a series
+    # (1,766 above the limit at sd 1e-4, 15,869 at 1e-8).
+    rng = np.random.default_rng(11)
+    n_time, noise = 2000, 0.7
+    resid = rng.normal(0.0, noise, size=(1, n_time))
+    white = stats.norm(0.0, noise).logpdf(resid).sum()
+    distance = []
+    for sd in (1e-1, 1e-2, spec.SCALE_FLOOR):
+        got, _, _ = gibbs._own_marginal(resid, np.ones((1, n_time)), np.array([sd]),
+                                        np.array([0.6]), np.array([noise]))
+        distance.append(abs(float(got[0]) - white))
+    # The gap shrinks like sd² (the path's variance), to 1e-4 at the floor.
+    assert distance == sorted(distance, reverse=True)
+    assert distance[-1] < 1e-4
+
+
+def test_collapsed_density_is_exact_when_the_noise_is_tiny_beside_the_path():
+    # Source: the dense Gaussian density of path plus noise (scipy.stats
+    # multivariate_normal), at the noise floor where the Woodbury form
+    # W - W(Q + W)⁻¹W cancels: the sampler's form must not.
+    rng = np.random.default_rng(12)
+    n_time = 60
+    sd, rho, noise = np.array([1.3]), np.array([0.95]), np.array([spec.SCALE_FLOOR])
+    lags = np.abs(np.subtract.outer(np.arange(n_time), np.arange(n_time)))
+    cov = sd[0] ** 2 * rho[0] ** lags + noise[0] ** 2 * np.eye(n_time)
+    resid = rng.multivariate_normal(np.zeros(n_time), cov)[None, :]
+    design, prior = rng.normal(size=(3, n_time)), 1.0
+    got, _, regression = gibbs._own_marginal(resid, np.ones((1, n_time)), sd, rho, noise,
+                                             design, prior)
+    full = cov + prior**2 * design.T @ design
+    expected = stats.multivariate_normal(np.zeros(n_time), full).logpdf(resid[0])
+    assert got[0] == pytest.approx(expected, rel=1e-7)
+    np.linalg.cholesky(regression[0][0])  # positive definite
+
+
+def test_a_row_that_cannot_be_evaluated_is_minus_infinity_not_an_error():
+    rng = np.random.default_rng(13)
+    resid = rng.normal(size=(3, 40))
+    sd = np.array([0.5, np.nan, 0.5])  # an impossible value: the factorisation fails there
+    got, _, _ = gibbs._own_marginal(resid, np.ones((3, 40)), sd, np.full(3, 0.5),
+                                    np.full(3, 0.3), rng.normal(size=(2, 40)), 1.0)
+    assert got[1] == -np.inf
+    assert np.isfinite(got[[0, 2]]).all()
+
+
+def test_a_chain_that_fails_is_started_afresh_and_the_restart_is_recorded(monkeypatch):
+    panel, _, _ = _simulated(n_time=60)
+    small = spec.parse(SIMPLE | {"own_ar": True})
+    original = gibbs._Sampler._store_shared
+    calls = {"n": 0}
+
+    def fails_once(self, *args):
+        calls["n"] += 1
+        if calls["n"] == 3:
+            raise np.linalg.LinAlgError("3-th leading minor not positive definite")
+        return original(self, *args)
+
+    monkeypatch.setattr(gibbs._Sampler, "_store_shared", fails_once)
+    fitted = inference.fit(panel, small, method="gibbs", draws=20, tune=5, chains=2, cores=1,
+                           seed=1)
+    restarts = fitted.diagnostics["restarts"]
+    assert len(restarts) == 1
+    assert restarts[0].startswith("chain 1: a Gibbs step failed: 3-th leading minor")
+    assert "smallest noise sd: 's" in restarts[0]
+    assert fitted.posterior.sizes["draw"] == 20
+
+
+def test_a_chain_that_always_fails_stops_the_fit_with_a_clear_message(monkeypatch):
+    panel, _, _ = _simulated(n_time=60)
+
+    def always(self, *args):
+        raise np.linalg.LinAlgError("not positive definite")
+
+    monkeypatch.setattr(gibbs._Sampler, "_store_shared", always)
+    with pytest.raises(FitError, match=r"chain 1 of the sampler failed after 3 fresh starts; "
+                       r"last: a Gibbs step failed: not positive definite \(smallest noise sd: "
+                       r"'s\d' .*trend step sd: .*check the series named, try another --seed"):
+        inference.fit(panel, spec.parse(SIMPLE), method="gibbs", draws=10, tune=2, chains=2,
+                      cores=1)

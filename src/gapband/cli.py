@@ -19,7 +19,9 @@ from rich.markup import escape
 from rich.table import Table
 
 import gapband
-from gapband.errors import GapbandError, InputError, Interrupted, SpecError, UsageError
+from gapband.chains import DEFAULT_CHAINS, TIME_BUDGET
+from gapband.errors import (FitError, GapbandError, InputError, Interrupted, SpecError,
+                            UsageError)
 
 if TYPE_CHECKING:
     from gapband.filling import FillOptions
@@ -68,6 +70,9 @@ def handle_errors(command):
         except UsageError as err:
             errors.print(f"[bold red]usage error:[/] {escape(str(err))}", highlight=False)
             sys.exit(EXIT_USAGE)
+        except FitError as err:  # the data as given cannot be fitted: exit as bad input
+            errors.print(f"[bold red]cannot fit:[/] {escape(str(err))}", highlight=False)
+            sys.exit(EXIT_INPUT)
         except GapbandError as err:
             errors.print(f"[bold red]error:[/] {escape(str(err))}", highlight=False)
             sys.exit(EXIT_INTERNAL)
@@ -136,12 +141,19 @@ def model_options(command):
                      show_default=True,
                      help="gibbs: exact block-Gibbs sampler; advi: fast, approximate (check "
                      "with holdout); nuts: exact, slow."),
-        click.option("--draws", type=click.IntRange(10), default=1000, show_default=True,
-                     help="Posterior draws (per chain for nuts)."),
-        click.option("--tune", type=click.IntRange(0), default=1000, show_default=True,
-                     help="Warm-up steps (nuts) or burn-in sweeps (gibbs) per chain."),
-        click.option("--chains", type=click.IntRange(1), default=2, show_default=True,
-                     help="Chains (nuts, gibbs)."),
+        click.option("--draws", type=click.IntRange(10),
+                     help="Kept draws per chain, fixed. Default: gibbs samples until its "
+                     "chains agree (R-hat <= 1.01, ESS >= 400) or --budget is spent; nuts "
+                     "and advi take 1000."),
+        click.option("--tune", type=click.IntRange(0),
+                     help="Burn-in sweeps (gibbs, default 500) or warm-up steps (nuts, "
+                     "default 1000) per chain."),
+        click.option("--budget", type=click.FloatRange(min=1), default=TIME_BUDGET,
+                     show_default=True, metavar="SECONDS",
+                     help="Time for gibbs sampling; a fit stopped by it before its chains "
+                     "agree says so, and its cells are flagged uncertain."),
+        click.option("--chains", type=click.IntRange(1), default=DEFAULT_CHAINS,
+                     show_default=True, help="Chains (nuts, gibbs), each from its own start."),
         click.option("--levels", callback=parse_levels, default="50,80,90,95",
                      show_default=True, help="Central credible-interval levels in percent."),
         click.option("--seed", type=int, default=0, show_default=True, help="Random seed."),
@@ -155,8 +167,8 @@ def model_options(command):
 
 
 #: The parameters :func:`model_options` adds, split off a command's keywords.
-MODEL_OPTION_NAMES = ("model", "transform", "method", "draws", "tune", "chains", "levels",
-                      "seed", "min_observed", "quiet")
+MODEL_OPTION_NAMES = ("model", "transform", "method", "draws", "tune", "budget", "chains",
+                      "levels", "seed", "min_observed", "quiet")
 
 
 def fill_settings(kw: dict, **rules) -> tuple[Path | None, str | None, FillOptions]:
@@ -166,7 +178,8 @@ def fill_settings(kw: dict, **rules) -> tuple[Path | None, str | None, FillOptio
     given = {name: kw.pop(name) for name in MODEL_OPTION_NAMES}
     options = filling.FillOptions(
         method=given["method"], draws=given["draws"], tune=given["tune"],
-        chains=given["chains"], levels=given["levels"], seed=given["seed"],
+        budget=given["budget"], chains=given["chains"], levels=given["levels"],
+        seed=given["seed"],
         rules=filling.FlagRules(min_observed=given["min_observed"], **rules),
         progress=not given["quiet"],
     )
@@ -237,6 +250,9 @@ def plan_and_runner(panel, model, given: dict) -> tuple:
               help="... or wider than this times the series' 5-95 % observed range.")
 @click.option("--max-gap", metavar="DURATION",
               help="Flag fills in gaps longer than DURATION (e.g. '72h') uncertain.")
+@click.option("--accept-unconverged", is_flag=True,
+              help="Keep the fills of a fit whose chains did not agree as 'filled' "
+              "(by default they are flagged filled_uncertain).")
 @click.option("--table", type=click.Choice(["csv", "parquet"]), default="csv",
               show_default=True, help="Format of the long table.")
 @click.option("--keep-draws", type=click.IntRange(0), default=200, show_default=True,
@@ -245,14 +261,15 @@ def plan_and_runner(panel, model, given: dict) -> tuple:
 @block_options
 @click.option("--overwrite", is_flag=True, help="Replace existing outputs in --out.")
 @handle_errors
-def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width, max_gap, table,
-         keep_draws, overwrite, **kw):
+def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width, max_gap,
+         accept_unconverged, table, keep_draws, overwrite, **kw):
     """Fill every missing cell of INPUT with a credible interval and a flag."""
     from gapband import filling
     from gapband.outputs import prepare_dir
 
     model, transform, options = fill_settings(kw, level=flag_level, max_width=max_width,
-                                              max_rel_width=max_rel_width, max_gap=max_gap)
+                                              max_rel_width=max_rel_width, max_gap=max_gap,
+                                              accept_unconverged=accept_unconverged)
     options.keep_draws = keep_draws
     blocks = block_settings(kw)
     prepare_dir(out_dir, ["filled.nc", f"filled.{table}", "summary.json"], overwrite)

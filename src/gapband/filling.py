@@ -24,6 +24,7 @@ import pandas as pd
 import xarray as xr
 
 from gapband import flags, outputs, resources
+from gapband.chains import DEFAULT_CHAINS, TIME_BUDGET
 from gapband.errors import GapbandError, InputError, UsageError
 from gapband.panel import step_of
 from gapband.scores import level_key
@@ -56,6 +57,8 @@ class FlagRules:
     max_rel_width: float | None = None
     max_gap: str | None = None
     min_observed: int = flags.MIN_OBSERVED
+    #: Keep the fills of a fit whose chains did not converge as ``filled``.
+    accept_unconverged: bool = False
 
 
 @dataclass
@@ -63,9 +66,14 @@ class FillOptions:
     """Settings of one fill run."""
 
     method: Method = "gibbs"
-    draws: int = 1000
-    tune: int = 1000
-    chains: int = 2
+    #: Kept draws per chain; None: the Gibbs sampler runs until its chains
+    #: agree (or ``budget`` is spent), NUTS and ADVI take their default.
+    draws: int | None = None
+    #: Burn-in sweeps (warm-up for NUTS); None: the method's default.
+    tune: int | None = None
+    chains: int = DEFAULT_CHAINS
+    #: Seconds of sampling after which the Gibbs sampler stops, converged or not.
+    budget: float = TIME_BUDGET
     levels: tuple[float, ...] = DEFAULT_LEVELS
     seed: int = 0
     rules: FlagRules = field(default_factory=FlagRules)
@@ -199,7 +207,8 @@ def fill(
 
     result = panel.merge(summaries.drop_vars("value"), join="left")
     unusable = int(flags.no_fill(result).sel(series=fitted.panel["series"]).sum())
-    result = flags.assign(result, **dataclasses.asdict(options.rules))
+    result = flags.assign(result, **dataclasses.asdict(options.rules),
+                          unconverged=not fitted.fit.diagnostics["converged"])
     result = result.merge(component_means(fitted, panel))
     if options.keep_draws:
         result = result.merge(joint_draws(fitted, result, options.keep_draws, options.seed))
@@ -301,6 +310,7 @@ def fit_panel(
     fitted = inference.fit(
         to_fit, spec, method=options.method, draws=options.draws, tune=options.tune,
         chains=options.chains, seed=options.seed, progress=options.progress, rank=options.rank,
+        budget=options.budget,
     )
     return Fitted(fitted, to_fit, spec, spec_label, time.perf_counter() - started)
 
@@ -343,14 +353,17 @@ def check_memory(panel: xr.Dataset, spec: ModelSpec, options: FillOptions) -> No
         The estimate exceeds the available memory; the message gives both
         and the ways to need less.
     """
+    from gapband import inference  # imports PyMC: only when a fit is about to run
+
     n_missing = int(panel["value"].isnull().sum())
+    draws = inference.kept_draws(options.method, options.draws)
     estimated = resources.estimate(
         panel.sizes["series"], panel.sizes["time"], n_missing, spec, method=options.method,
-        draws=options.draws, chains=options.chains, cores=os.cpu_count() or 1,
+        draws=draws, chains=options.chains, cores=os.cpu_count() or 1,
         keep_draws=options.keep_draws, n_levels=len(options.levels), rank=options.rank,
     )
     log.info("memory estimate: %s", resources.size_text(estimated.total))
-    resources.check(estimated, source=panel.attrs.get("source", "input"), draws=options.draws,
+    resources.check(estimated, source=panel.attrs.get("source", "input"), draws=draws,
                     chains=options.chains, keep_draws=options.keep_draws)
 
 

@@ -11,7 +11,8 @@ CF Conventions 1.10, section 3.5), linked from ``value`` and ``filled`` by
   ``filled`` and every fill summary are NaN there.
 - ``2 filled_uncertain``: a missing cell whose interval at ``level`` is wider
   than ``max_width`` (data units) or than ``max_rel_width`` times the series'
-  spread, or which sits in a missing run lasting longer than ``max_gap``.
+  spread, which sits in a missing run lasting longer than ``max_gap``, or
+  which comes from a fit whose chains did not converge (unless accepted).
 - ``1 filled``: every other missing cell.
 """
 
@@ -87,6 +88,8 @@ def assign(
     max_rel_width: float | None = None,
     max_gap: str | pd.Timedelta | timedelta | None = None,
     min_observed: int = MIN_OBSERVED,
+    accept_unconverged: bool = False,
+    unconverged: bool | xr.DataArray = False,
 ) -> xr.Dataset:
     """Flag every cell and build the ``filled`` series.
 
@@ -109,6 +112,11 @@ def assign(
         ``"72h"`` or a Timedelta.
     min_observed : int
         Series with fewer observations are not filled.
+    accept_unconverged : bool
+        Keep fills of an unconverged fit as ``filled`` (the user's choice).
+    unconverged : bool or DataArray of bool, dims (series, time)
+        Cells filled by a fit whose chains did not converge (True: all); they
+        are uncertain unless ``accept_unconverged``.
 
     Returns
     -------
@@ -147,6 +155,9 @@ def assign(
     if gap_limit is not None:
         runs = xr.DataArray(run_lengths(missing.values), coords=missing.coords, dims=missing.dims)
         uncertain = uncertain | (runs > gap_limit / step_of(result))
+    unsettled = not accept_unconverged and bool(np.any(unconverged))
+    if unsettled:
+        uncertain = uncertain | (missing & unconverged)
 
     flag = xr.where(
         observed,
@@ -171,7 +182,8 @@ def assign(
         "standard_name": "status_flag",
         "flag_values": FLAG_VALUES.copy(),
         "flag_meanings": " ".join(FLAG_MEANINGS),
-        "comment": _rules_text(level, max_width, max_rel_width, gap_limit, min_observed),
+        "comment": _rules_text(level, max_width, max_rel_width, gap_limit, min_observed,
+                               unsettled),
     }
     return out
 
@@ -270,6 +282,7 @@ def _rules_text(
     max_rel_width: float | None,
     max_gap: pd.Timedelta | None,
     min_observed: int,
+    unsettled: bool,
 ) -> str:
     rules = [f"not_filled: series with fewer than {min_observed} observations"]
     if max_width is not None:
@@ -281,4 +294,6 @@ def _rules_text(
         )
     if max_gap is not None:
         rules.append(f"filled_uncertain: in a missing run longer than {max_gap}")
+    if unsettled:
+        rules.append("filled_uncertain: from a fit whose chains did not converge")
     return "; ".join(rules)

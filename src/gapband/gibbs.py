@@ -21,7 +21,7 @@ the same posterior by cycling through exact conditional distributions
    paths; and the same shared paths given the noise, the own paths
    following (:meth:`_Sampler._paths`). The shared state is a Gaussian
    Markov random field in time, banded when ordered time first, with a
-   dense border for the coefficients (:func:`gapband.gmrf.draw_bordered`);
+   dense border for the coefficients (:class:`gapband.gmrf.BorderedGaussian`);
 4. Student-t noise only: one Gamma((ν+1)/2, (ν + r²/σ²)/2) precision weight
    per observed cell (normal scale mixture; Geweke, J. Appl. Econometrics 1993);
 5. noise sd and trend step sd given the paths: with a HalfNormal(c) prior on
@@ -47,29 +47,23 @@ series. Chains run in parallel processes.
 
 from __future__ import annotations
 
-import multiprocessing
-import queue
-import signal
-import sys
 import time
-import traceback
 from dataclasses import dataclass
 
 import numpy as np
 import xarray as xr
 from rich.console import Console
-from rich.progress import (
-    BarColumn,
-    MofNCompleteColumn,
-    Progress,
-    TextColumn,
-    TimeRemainingColumn,
-)
+from rich.progress import Progress, TextColumn, TimeElapsedColumn
 from scipy.stats import geninvgauss
-from threadpoolctl import threadpool_limits
 
-from gapband.gmrf import StackedAr1, ar1_entries, draw_banded, draw_bordered
-from gapband.spec import ModelSpec
+from gapband import chains as chains_
+from gapband.chains import ChainFailure
+from gapband.convergence import PROBE_CELLS, Verdict, assess, chain_widths
+from gapband.convergence import probes as convergence_probes
+from gapband.errors import FitError
+from gapband.gmrf import (BorderedGaussian, StackedAr1, ar1_entries, ar1_log_det,
+                          gaussian_log_evidence)
+from gapband.spec import OWN_RHO_MAX, SCALE_FLOOR, STEP_FLOOR, ModelSpec
 
 #: Floors that keep variances and sums of squares strictly positive.
 _TINY = 1e-12
@@ -87,6 +81,14 @@ _GIG_ROUNDS = 20
 
 #: Collapsed Metropolis steps on each series' own sd, coefficient and noise sd per sweep.
 _OWN_STEPS = 1
+
+
+class _RowsFailed(np.linalg.LinAlgError):
+    """A step that cannot be evaluated for some series (their rows)."""
+
+    def __init__(self, what: str, rows: np.ndarray):
+        super().__init__(what)
+        self.rows = rows
 
 
 @dataclass
@@ -116,8 +118,9 @@ class _Sampler:
         self.z = np.where(self.seen, z, 0.0)
         self.fourier = fourier
         self.rank, self.ar_factors, self.order = rank, ar_factors, spec.ar_order
-        self.accepted = {"ar_pacf": 0, "own": 0, "rescale": 0}
-        self.proposed = {"ar_pacf": 0, "own": 0, "rescale": 0}
+        self.accepted = {"ar_pacf": 0, "own": 0, "rescale": 0, "trend_scale": 0}
+        self.proposed = {"ar_pacf": 0, "own": 0, "rescale": 0, "trend_scale": 0}
+        self.trend_step, self.trend_tuned, self.tuning = 0.1, 0, False
         self.scale_step = 0.05
         self.scale_tuned = 0
         self.own_step = np.full(z.shape[0], 0.3)
@@ -127,7 +130,13 @@ class _Sampler:
 
     # -- initial point ---------------------------------------------------------
     def initial(self) -> _State:
-        """SVD of the mean-imputed panel, jittered per chain; scales at prior scale."""
+        """An over-dispersed start: the SVD of the mean-imputed panel, loadings jittered by
+        30 %, and every scale and coefficient drawn across its plausible range.
+
+        Chains that start apart and still agree are evidence of convergence;
+        chains started alike can agree without it (Gelman & Rubin,
+        Statistical Science 7, 1992).
+        """
         spec, rng = self.spec, self.rng
         n_series, n_time = self.z.shape
         r, rb, h = self.rank, self.ar_factors, self.fourier.shape[1]
@@ -136,23 +145,29 @@ class _Sampler:
         filled = np.where(self.seen, self.z, centre)
         u, s, vt = np.linalg.svd(filled, full_matrices=False)
         loading = u[:, :r] * s[:r] / np.sqrt(n_time)
-        loading = loading * (1.0 + 0.1 * rng.standard_normal(loading.shape))
+        loading = loading * (1.0 + 0.3 * rng.standard_normal(loading.shape))
         trend = vt[:r] * np.sqrt(n_time)
         if spec.fixed.loading is not None:
             loading = np.full((n_series, r), spec.fixed.loading)
+        def spread(prior: float, size: int) -> np.ndarray:
+            """Scales from a fifth of the prior scale to twice it, log-uniform."""
+            return prior * np.exp(rng.uniform(np.log(0.2), np.log(2.0), size))
+
         return _State(
             loading=loading,
             trend=trend,
             coef=np.zeros((r, h)),
-            short_loading=0.1 * rng.standard_normal((n_series, rb)),
+            short_loading=0.3 * rng.standard_normal((n_series, rb)),
             ar=np.zeros((rb, n_time)),
-            pacf=np.zeros((rb, self.order)),
+            pacf=rng.uniform(-0.5, 0.9, (rb, self.order)) * (np.arange(self.order) == 0),
             own_path=np.zeros((n_series, n_time)),
-            own_sd=np.full(n_series, _given(spec.fixed.own, 0.5 * spec.priors.own)),
-            own_rho=np.full(n_series, 0.5),
-            noise=np.full(n_series, _given(spec.fixed.noise, 0.5)),
-            innovation=np.full(r, _given(spec.fixed.trend_innovation,
-                                         spec.priors.trend_innovation)),
+            own_sd=np.maximum(_given(spec.fixed.own, spread(spec.priors.own, n_series)),
+                              SCALE_FLOOR),
+            own_rho=rng.uniform(0.1, 0.95, n_series),
+            noise=np.maximum(_given(spec.fixed.noise, spread(spec.priors.noise, n_series)),
+                             SCALE_FLOOR),
+            innovation=np.maximum(_given(spec.fixed.trend_innovation,
+                                         spread(spec.priors.trend_innovation, r)), STEP_FLOOR),
             weight=np.ones((n_series, n_time)),
         )
 
@@ -164,6 +179,7 @@ class _Sampler:
         the third (a partially collapsed Gibbs sampler; van Dyk & Park, JASA
         2008: each marginalised draw is followed by a draw of what it left out).
         """
+        self.tuning = tuning
         # The factor of every series' own-path precision at the new own
         # scales, shared by the next two blocks (their weights are unchanged).
         factor, loading_posterior = (self._own_collapsed(s, tuning) if self.spec.own_ar
@@ -176,12 +192,12 @@ class _Sampler:
             resid = np.where(self.seen, self.z - self._mean(s), 0.0)
             s.noise = np.sqrt(_gig_variance(
                 (s.weight * resid**2).sum(axis=1), self.seen.sum(axis=1),
-                self.spec.priors.noise, self.rng))
+                self.spec.priors.noise, self.rng, floor=SCALE_FLOOR**2))
         if self.spec.fixed.trend_innovation is None:
             steps = np.diff(s.trend, axis=1)
             s.innovation = np.sqrt(_gig_variance(
                 (steps**2).sum(axis=1), np.full(self.rank, steps.shape[1]),
-                self.spec.priors.trend_innovation, self.rng))
+                self.spec.priors.trend_innovation, self.rng, floor=STEP_FLOOR**2))
         if self.ar_factors:
             self._ar_pacf(s)
         for _ in range(_SCALE_STEPS):
@@ -207,6 +223,8 @@ class _Sampler:
             h = s.coef.shape[1]
             for k in range(self.rank):
                 new_tau = s.innovation[k] / c[k] if tau_free else s.innovation[k]
+                if new_tau < STEP_FLOOR:
+                    continue  # outside the prior's support
                 log_ratio = (
                     _walk_logp(s.trend[k] / c[k], new_tau, priors.level)
                     - _walk_logp(s.trend[k], s.innovation[k], priors.level)
@@ -243,6 +261,21 @@ class _Sampler:
             gain = 1.0 / (1.0 + self.scale_tuned) ** 0.6
             self.scale_step *= np.exp(gain * (accept.mean() - 0.3))
 
+    def finite(self, s: _State) -> bool:
+        """Whether every scale and path of the state is a finite number."""
+        return all(np.isfinite(v).all() for v in (s.noise, s.own_sd, s.own_rho, s.innovation,
+                                                   s.trend, s.ar, s.loading, s.coef))
+
+    def mean_at(self, s: _State, n: np.ndarray, t: np.ndarray) -> np.ndarray:
+        """The model mean (standardised units) at cells (series n, time t), own path included."""
+        factor = s.trend[:, t] + s.coef @ self.fourier[t].T  # (r, cells)
+        mean = np.einsum("ck,kc->c", s.loading[n], factor)
+        if self.ar_factors:
+            mean += np.einsum("ck,kc->c", s.short_loading[n], s.ar[:, t])
+        if self.spec.own_ar:
+            mean += s.own_path[n, t]
+        return mean
+
     def _season(self, s: _State) -> np.ndarray:
         return s.coef @ self.fourier.T  # (r, T)
 
@@ -256,7 +289,7 @@ class _Sampler:
 
     def _cell_weight(self, s: _State) -> np.ndarray:
         """Precision of each cell's observation (0 where unobserved), (N, T)."""
-        return self.seen * s.weight / np.maximum(s.noise, _TINY)[:, None] ** 2
+        return self.seen * s.weight / s.noise[:, None] ** 2
 
     def _paths(self, s: _State, factor: StackedAr1 | None = None) -> None:
         """The shared paths, and the own paths when the spec has them.
@@ -288,12 +321,17 @@ class _Sampler:
         resid = self.z - self._mean(s, own=False)
         s.own_path = factor.draw(weight * resid, self.rng)
 
-    def _shared_prior(self, s: _State) -> tuple[np.ndarray, int]:
-        """Prior precision of the shared state, lower banded, and the state size d.
+    def _shared_prior(self, s: _State, innovation: np.ndarray | None = None,
+                      ) -> tuple[np.ndarray, int, float]:
+        """Prior precision of the shared state, lower banded; the state size d; its log|Q|.
 
         The state at time t is (trend_1..r, ar_1..rb); ordered time first,
-        its precision has lower bandwidth d·(lags + 1) - 1.
+        its precision has lower bandwidth d·(lags + 1) - 1. ``innovation``
+        replaces the state's trend step sds. log|Q| follows from the
+        prediction-error form (a unit Jacobian): a walk contributes
+        -log level² - (T - 1)·log δ², an AR path -Σ log v_t.
         """
+        innovation = s.innovation if innovation is None else innovation
         r, rb, p = self.rank, self.ar_factors, self.order
         n_time = self.z.shape[1]
         d = r + rb
@@ -301,8 +339,9 @@ class _Sampler:
         ab = np.zeros((d * (lags + 1), n_time * d))
         times = np.arange(n_time) * d
         level_precision = 1.0 / self.spec.priors.level**2
+        log_det = r * np.log(level_precision) - 2.0 * (n_time - 1) * np.log(innovation).sum()
         for k in range(r):
-            step_precision = 1.0 / max(s.innovation[k], np.sqrt(_TINY)) ** 2
+            step_precision = 1.0 / innovation[k] ** 2
             diagonal = np.full(n_time, 2.0 * step_precision)
             diagonal[[0, -1]] = step_precision
             diagonal[0] += level_precision
@@ -310,40 +349,119 @@ class _Sampler:
             _add(ab, times[1:] + k, times[:-1] + k, -step_precision)
         for j in range(rb):
             coefs, variances = _ar_rows(s.pacf[j], n_time)
+            log_det -= np.log(variances).sum()
             k = r + j
             for i in range(p + 1):
                 for m in range(i, p + 1):  # the lower entry Q[t-i, t-m], i <= m
                     t = np.arange(m, n_time)
                     _add(ab, times[t - i] + k, times[t - m] + k,
                          coefs[t, i] * coefs[t, m] / variances[t])
-        return ab, d
+        return ab, d, float(log_det)
 
     def _shared_given_own(self, s: _State) -> None:
         """Trend and AR paths of all factors with their Fourier coefficients, given the own paths.
 
         Observation n at time t sees c_n·x_t + (L_n ⊗ F_t)·β with c_n = (L_n,
         B_n), x_t the shared state and β the Fourier coefficients: the
-        precision of x is banded and β borders it (:func:`draw_bordered`).
+        precision of x is banded and β borders it (:class:`BorderedGaussian`).
+        The trend step sds move first, jointly with these paths
+        (:meth:`_trend_scales`).
         """
-        ab, d = self._shared_prior(s)
+        data = self._shared_data(s)
+        posterior = None
+        if self.spec.fixed.trend_innovation is None:
+            posterior = self._trend_scales(s, data)
+        if posterior is None:
+            posterior = self._shared_posterior(s, data, s.innovation)[0]
+        self._store_shared(s, *posterior.draw(self.rng))
+
+    def _shared_data(self, s: _State) -> dict:
+        """What the observations add to the shared state's precision, given the own paths.
+
+        A lower banded data precision (the prior's shape), the canonical mean,
+        and with seasonal cycles the border, corner (with β's prior) and its
+        canonical mean; plus yᵀWy, log|W| and the observed count for the
+        marginal likelihood.
+        """
+        ab, d, _ = self._shared_prior(s)
+        ab[:] = 0.0
         n_time = self.z.shape[1]
         times = np.arange(n_time) * d
         shared = np.concatenate([s.loading, s.short_loading], axis=1)  # (N, d)
         weight = self._cell_weight(s)
-        weighted = weight * (self.z - s.own_path)
+        target = self.z - s.own_path
+        weighted = weight * target
         rows, cols = np.tril_indices(d)
         data = np.einsum("nt,nk,nl->tkl", weight, shared, shared, optimize=True)
         _add(ab, times[:, None] + rows, times[:, None] + cols, data[:, rows, cols])
-        rhs = np.einsum("nt,nk->tk", weighted, shared, optimize=True).ravel()
-        border = corner = corner_rhs = None
+        out = {"ab": ab, "rhs": np.einsum("nt,nk->tk", weighted, shared, optimize=True).ravel(),
+               "border": None, "corner": None, "corner_rhs": None,
+               "quadratic": float((weighted * target).sum()),
+               "log_det": float(np.log(weight[self.seen]).sum()),
+               "observed": int(self.seen.sum()), "prior_log_det": 0.0}
         if self.fourier.shape[1]:
             fourier = self.fourier
             cross = np.einsum("nt,nk,nj->tkj", weight, shared, s.loading, optimize=True)
             border = cross[:, :, :, None] * fourier[:, None, None, :]
             per_time = np.einsum("nt,nk,nl->tkl", weight, s.loading, s.loading, optimize=True)
             corner = np.einsum("tkl,th,tg->khlg", per_time, fourier, fourier, optimize=True)
-            corner_rhs = np.einsum("nt,nk,th->kh", weighted, s.loading, fourier, optimize=True)
-        self._draw_shared(s, ab, rhs, border, corner, corner_rhs)
+            size = corner.shape[0] * corner.shape[1]
+            precision = 1.0 / self.spec.priors.seasonal**2
+            out |= {"border": border.reshape(n_time * d, size),
+                    "corner": corner.reshape(size, size) + np.eye(size) * precision,
+                    "corner_rhs": np.einsum("nt,nk,th->kh", weighted, s.loading, fourier,
+                                            optimize=True).ravel(),
+                    "prior_log_det": size * np.log(precision)}
+        return out
+
+    def _shared_posterior(self, s: _State, data: dict, innovation: np.ndarray,
+                          ) -> tuple[BorderedGaussian, float]:
+        """The shared state's conditional at trend step sds ``innovation``, and the
+        log marginal likelihood of the data with the state integrated out."""
+        ab, _, prior_log_det = self._shared_prior(s, innovation)
+        posterior = BorderedGaussian.of(ab + data["ab"], data["rhs"], data["border"],
+                                        data["corner"], data["corner_rhs"])
+        evidence = gaussian_log_evidence(posterior, prior_log_det + data["prior_log_det"],
+                                         data["quadratic"], data["log_det"], data["observed"])
+        return posterior, evidence
+
+    def _trend_scales(self, s: _State, data: dict) -> BorderedGaussian | None:
+        """The trend step sds jointly with the shared paths, the paths integrated out.
+
+        A random-walk Metropolis step on log δ (all factors at once) accepted
+        on the marginal likelihood of the data given everything but the
+        shared state (:meth:`_shared_posterior`), times the truncated
+        HalfNormal prior; the paths are then drawn at the accepted δ. Drawing
+        δ given the paths alone crosses slowly between a rough trend and a
+        smooth one, since the paths pin δ down (the one-block update:
+        Knorr-Held & Rue, Scandinavian Journal of Statistics 29, 2002).
+        Returns the conditional at the accepted δ; None when neither can be
+        evaluated (the caller factorises at the current δ and fails there).
+        """
+        prior = self.spec.priors.trend_innovation
+        proposal = s.innovation * np.exp(self.trend_step * self.rng.standard_normal(self.rank))
+
+        def log_post(innovation):
+            try:
+                posterior, evidence = self._shared_posterior(s, data, innovation)
+            except np.linalg.LinAlgError:
+                return None, -np.inf  # not evaluable: a proposal there is rejected
+            logp = evidence + np.sum(np.log(innovation) - 0.5 * (innovation / prior) ** 2)
+            return posterior, logp
+
+        current, now = log_post(s.innovation)
+        inside = bool(np.all(proposal >= STEP_FLOOR))
+        proposed, then = log_post(proposal) if inside else (None, -np.inf)
+        accept = np.log(self.rng.random()) < then - now
+        self.proposed["trend_scale"] += 1
+        if accept:
+            self.accepted["trend_scale"] += 1
+            s.innovation = proposal
+        if self.tuning:
+            self.trend_tuned += 1
+            gain = 1.0 / (1.0 + self.trend_tuned) ** 0.6
+            self.trend_step *= np.exp(gain * (float(accept) - 0.3))
+        return proposed if accept else current
 
     def _shared_given_signal(self, s: _State) -> None:
         """The shared paths given the noise: the own paths are the signal minus the shared part.
@@ -353,7 +471,7 @@ class _Sampler:
         shared part, an AR(1) with tridiagonal precision Q_n; the shared
         state's precision gains Σ_n Q_n[t, s]·c_n·c_nᵀ, at lags 0 and 1 only.
         """
-        ab, d = self._shared_prior(s)
+        ab, d, _ = self._shared_prior(s)
         n_time = self.z.shape[1]
         times = np.arange(n_time) * d
         signal = self._mean(s)
@@ -395,19 +513,17 @@ class _Sampler:
                       + np.einsum("kl,hg->khlg", end_ll, ends)
                       + np.einsum("kl,hg->khlg", off_ll, lagged + lagged.T))
             corner_rhs = np.einsum("nt,nk,th->kh", q_signal, s.loading, fourier, optimize=True)
-        self._draw_shared(s, ab, rhs, border, corner, corner_rhs)
+            size = corner.shape[0] * corner.shape[1]
+            border, corner_rhs = border.reshape(rhs.size, size), corner_rhs.ravel()
+            corner = corner.reshape(size, size) + np.eye(size) / self.spec.priors.seasonal**2
+        self._store_shared(s, *BorderedGaussian.of(ab, rhs, border, corner,
+                                                   corner_rhs).draw(self.rng))
         s.own_path = signal - self._mean(s, own=False)
 
-    def _draw_shared(self, s: _State, ab, rhs, border, corner, corner_rhs) -> None:
-        """Draw the shared state (and β when there is a border) and store it in ``s``."""
+    def _store_shared(self, s: _State, x: np.ndarray, beta: np.ndarray) -> None:
+        """Put a draw of the shared state (and the Fourier coefficients β) into ``s``."""
         r, n_time = self.rank, self.z.shape[1]
-        if border is None:
-            x = draw_banded(ab, rhs, self.rng)
-        else:
-            size = corner.shape[0] * corner.shape[1]
-            corner = corner.reshape(size, size) + np.eye(size) / self.spec.priors.seasonal**2
-            x, beta = draw_bordered(ab, rhs, border.reshape(rhs.size, size), corner,
-                                    corner_rhs.ravel(), self.rng)
+        if beta.size:
             s.coef = beta.reshape(s.coef.shape)
         x = x.reshape(n_time, -1)
         s.trend = x[:, :r].T.copy()
@@ -474,15 +590,18 @@ class _Sampler:
         target, design = self._regression(s)
         base = self.seen * s.weight
         free = np.array([spec.fixed.own is None, True, spec.fixed.noise is None])
-        current = np.column_stack([np.log(s.own_sd), _logit(s.own_rho), np.log(s.noise)])
+        current = np.column_stack([np.log(s.own_sd), _logit(s.own_rho / OWN_RHO_MAX),
+                                   np.log(s.noise)])
 
         def log_post(theta):
-            sd, rho, noise = np.exp(theta[:, 0]), _expit(theta[:, 1]), np.exp(theta[:, 2])
+            sd, noise = np.exp(theta[:, 0]), np.exp(theta[:, 2])
+            rho = OWN_RHO_MAX * _expit(theta[:, 1])
             value, factor, regression = _own_marginal(target, base, sd, rho, noise, design,
                                                       spec.priors.loading)
             # Priors in the transformed coordinates (with their Jacobians):
-            # HalfNormal on the sds, Uniform(0, 1) on rho.
-            value += np.log(rho) + np.log1p(-rho)
+            # HalfNormal on the sds (truncated at the floor: the proposal is
+            # refused below it), Uniform(0, OWN_RHO_MAX) on rho.
+            value += np.log(rho) + np.log1p(-rho / OWN_RHO_MAX)
             if free[0]:
                 value += theta[:, 0] - 0.5 * (sd / spec.priors.own) ** 2
             if free[2]:
@@ -490,10 +609,12 @@ class _Sampler:
             return value, factor, regression
 
         now, factor, regression = log_post(current)
+        floor = np.log(SCALE_FLOOR)
         for _ in range(_OWN_STEPS):
             shock = np.einsum("nij,nj->ni", self.own_shape, rng.standard_normal(current.shape))
             proposal = current + self.own_step[:, None] * free * shock
-            inside = np.abs(proposal[:, 1]) < 30.0  # rho within (0, 1) in floating point
+            inside = ((np.abs(proposal[:, 1]) < 30.0)  # rho inside its range in floating point
+                      & (proposal[:, 0] >= floor) & (proposal[:, 2] >= floor))
             then, proposed, proposed_regression = log_post(
                 np.where(inside[:, None], proposal, current))
             then = np.where(inside, then, -np.inf)
@@ -510,7 +631,11 @@ class _Sampler:
             self.proposed["own"] += accept.size
             if tuning:
                 self._adapt_own(current, accept, free)
-        s.own_sd, s.own_rho, s.noise = (np.exp(current[:, 0]), _expit(current[:, 1]),
+        if not np.isfinite(now).all():
+            raise _RowsFailed("the own-persistence density cannot be evaluated",
+                              np.flatnonzero(~np.isfinite(now)))
+        s.own_sd, s.own_rho, s.noise = (np.exp(current[:, 0]),
+                                        OWN_RHO_MAX * _expit(current[:, 1]),
                                         np.exp(current[:, 2]))
         return factor, regression
 
@@ -569,7 +694,7 @@ class _Sampler:
         """Student-t noise as a normal scale mixture: Gamma precision weight per cell."""
         df = self.spec.noise_df
         resid = self.z - self._mean(s)
-        rate = 0.5 * (df + resid**2 / np.maximum(s.noise, _TINY)[:, None] ** 2)
+        rate = 0.5 * (df + resid**2 / s.noise[:, None] ** 2)
         s.weight = np.where(self.seen,
                             self.rng.gamma(0.5 * (df + 1.0), 1.0 / rate), 1.0)
 
@@ -582,12 +707,12 @@ def sample(
     rank: int,
     ar_factors: int,
     coords: dict,
-    draws: int = 1000,
-    tune: int = 1000,
-    chains: int = 2,
+    plan: chains_.Plan,
+    chains: int = 4,
     seed: int = 0,
     cores: int = 1,
     progress: bool = False,
+    keep: int = chains_.KEPT_DRAWS,
 ) -> tuple[xr.Dataset, dict, dict]:
     """Draw from the posterior of the gapband model by block Gibbs.
 
@@ -603,8 +728,11 @@ def sample(
     coords : dict
         Coordinate values of ``series``, ``time``, ``factor``, ``short_factor``,
         ``lag`` and ``harmonic``.
-    draws, tune, chains : int
-        Kept sweeps per chain, burn-in sweeps per chain, chains.
+    plan : gapband.chains.Plan
+        Burn-in sweeps, then a fixed number of kept sweeps or rounds until
+        the chains agree (:mod:`gapband.convergence`) within a time budget.
+    chains : int
+        Chains, each from its own over-dispersed start.
     seed : int
         Each chain's generator is spawned from ``numpy.random.SeedSequence(seed)``;
         the same seed gives the same draws, however many cores run them.
@@ -612,7 +740,11 @@ def sample(
         Chains run at once, each in its own process; 1 (the default) runs
         them one after another here. :func:`gapband.inference.fit` chooses it.
     progress : bool
-        Show a progress bar (sweeps done, time remaining) on stderr.
+        Show a progress line (sweeps, R-hat and ESS against their targets) on stderr.
+    keep : int
+        Most draws kept per chain; a longer run keeps every second, fourth...
+        sweep (the diagnostics use every sweep). With a fixed ``plan.draws``,
+        every sweep is kept.
 
     Returns
     -------
@@ -626,45 +758,70 @@ def sample(
         ``series × T + time`` in coordinate ``gap``), and ``own_mean``
         (chain, series, time), their posterior mean per chain.
     diagnostics : dict
-        ``sampler``, ``divergences`` (always 0), ``acceptance`` of the
-        Metropolis-Hastings steps, ``cores``.
+        The convergence verdict (:class:`gapband.convergence.Verdict`),
+        ``chain_width_ratio`` per series, ``sweeps`` per chain, ``stopped_by``
+        ("converged", "budget" or "draws"), ``restarts`` (why a chain was
+        started afresh), ``sampler``, ``divergences`` (always 0),
+        ``acceptance`` of the Metropolis-Hastings steps, ``cores``.
     timings : dict
         Seconds of burn-in (``tune``) and kept sweeps (``sample``), summed
         over chains, and ``wall`` for the whole run.
+
+    Raises
+    ------
+    FitError
+        A chain failed numerically after every fresh start; the message names
+        the series and parameter values and says what to try.
     """
     cores = max(1, min(chains, cores))
     streams = np.random.SeedSequence(seed).spawn(chains)
-    job = _Job(z, fourier, spec, rank, ar_factors, draws, tune)
+    gap_cells = np.flatnonzero(np.isnan(z).ravel())
+    pool = gap_cells if gap_cells.size else np.arange(z.size)
+    probe_cells = np.sort(np.random.default_rng(seed).choice(
+        pool, size=min(PROBE_CELLS, pool.size), replace=False))
+    job = _Job(z, fourier, spec, rank, ar_factors, plan.draws or keep, probe_cells,
+               list(map(str, coords["series"])))
+    series = np.asarray(coords["series"])
+
+    def judge(rows: list[np.ndarray]) -> Verdict:
+        return assess(job.probe_dataset(rows, series))
+
     started = time.perf_counter()
     bar = Progress(
-        TextColumn(f"gibbs, {chains} chains on {cores} core{'s' * (cores > 1)}"), BarColumn(),
-        MofNCompleteColumn(), TimeRemainingColumn(),
-        console=Console(stderr=True), disable=not progress, transient=True,
-    )
+        TextColumn(f"gibbs, {chains} chains on {cores} core{'s' * (cores > 1)}"),
+        TextColumn("{task.completed:,.0f} sweeps"), TextColumn("{task.fields[status]}"),
+        TimeElapsedColumn(), console=Console(stderr=True), disable=not progress,
+        transient=True)
     with bar:
-        task = bar.add_task("sweeps", total=chains * (tune + draws))
-        if cores == 1:
-            # One BLAS thread, as in the chain processes: the sampler's matrix
-            # products are small, and an idle BLAS thread spins on a core.
-            with threadpool_limits(1):
-                results = [job.run(stream, lambda done: bar.advance(task, done))
-                           for stream in streams]
-        else:
-            results = _run_in_processes(job, streams, cores, lambda done: bar.advance(task, done))
+        task = bar.add_task("sweeps", total=None, status="burn-in")
+
+        def status(text: str, done: int) -> None:
+            bar.update(task, advance=done, **({"status": text} if text else {}))
+
+        try:
+            outcome = chains_.run(job, streams, cores, plan, judge, status)
+        except chains_.ChainLost as lost:
+            raise FitError(f"{lost}. This happens when a series is constant for long "
+                           "stretches or has a scale far from the others': check the series "
+                           "named, try another --seed, or fit it with fewer series") from None
     accepted: dict[str, int] = {}
     proposed: dict[str, int] = {}
     timings = {"tune": 0.0, "sample": 0.0}
-    for result in results:
+    for result in outcome.results:
         for name in result.accepted:
             accepted[name] = accepted.get(name, 0) + result.accepted[name]
             proposed[name] = proposed.get(name, 0) + result.proposed[name]
         for phase in timings:
             timings[phase] += result.seconds[phase]
     timings["wall"] = time.perf_counter() - started
-    posterior = _dataset(results, coords, job.gap_cells)
+    posterior = _dataset(outcome.results, coords, gap_cells)
+    checked = job.probe_dataset(outcome.probes, series)
     acceptance = {name: accepted[name] / proposed[name] for name in accepted if proposed[name]}
-    diagnostics = {"sampler": "gibbs", "divergences": 0, "acceptance": acceptance,
-                   "cores": cores}
+    diagnostics = outcome.verdict.as_dict() | {
+        "chain_width_ratio": chain_widths(checked, series[probe_cells // z.shape[1]]),
+        "sweeps": outcome.sweeps, "stopped_by": outcome.stopped_by,
+        "restarts": outcome.restarts, "sampler": "gibbs", "divergences": 0,
+        "acceptance": acceptance, "cores": cores}
     return posterior, diagnostics, timings
 
 
@@ -688,112 +845,107 @@ class _Job:
     spec: ModelSpec
     rank: int
     ar_factors: int
-    draws: int
-    tune: int
+    keep: int
+    probe_cells: np.ndarray
+    series: list[str]
 
-    @property
-    def gap_cells(self) -> np.ndarray:
-        return np.flatnonzero(np.isnan(self.z).ravel())
+    def start(self, stream: np.random.SeedSequence) -> _Run:
+        """A chain from a fresh over-dispersed start."""
+        return _Run(self, np.random.default_rng(stream))
 
-    def run(self, stream: np.random.SeedSequence, advance) -> _Chain:
-        """Burn in, then keep ``draws`` sweeps; ``advance(k)`` reports k more sweeps done."""
-        sampler = _Sampler(self.z, self.fourier, self.spec, self.rank, self.ar_factors,
-                           np.random.default_rng(stream))
-        state = sampler.initial()
-        store = _Store(self.draws, self.z.shape, self.rank, self.ar_factors,
-                       self.fourier.shape[1], self.spec, self.gap_cells)
-        seconds = {}
-        for phase, sweeps in (("tune", self.tune), ("sample", self.draws)):
-            start = last = time.perf_counter()
-            pending = 0
-            for i in range(sweeps):
-                sampler.sweep(state, tuning=phase == "tune")
-                if phase == "sample":
-                    store.keep(i, state)
-                pending += 1
-                if time.perf_counter() - last > _REPORT_EVERY:
-                    advance(pending)
-                    pending, last = 0, time.perf_counter()
-            advance(pending)
-            seconds[phase] = time.perf_counter() - start
-        return _Chain(store.arrays, store.own_mean(), sampler.accepted, sampler.proposed,
-                      seconds)
+    def probe_dataset(self, rows: list[np.ndarray], series: np.ndarray) -> xr.Dataset:
+        """Every chain's probe rows (:meth:`_Run.probe`) as a :func:`convergence.probes` set."""
+        n_draw = min(len(r) for r in rows)
+        stacked = np.stack([r[:n_draw] for r in rows])  # (chain, draw, column)
+        q, n = self.probe_cells.size, self.z.shape[0]
+        own = stacked[:, :, 2 * q + n:] if self.spec.own_ar else None
+        return convergence_probes(stacked[:, :, :q], stacked[:, :, q:2 * q],
+                                  stacked[:, :, 2 * q:2 * q + n], own, series)
+
+
+class _Run:
+    """One chain of the sampler: its state, its store of kept draws, its sweeps."""
+
+    def __init__(self, job: _Job, rng: np.random.Generator):
+        self.job, self.rng = job, rng
+        self.sampler = _Sampler(job.z, job.fourier, job.spec, job.rank, job.ar_factors, rng)
+        self.state = self.sampler.initial()
+        self.store = _Store(job.keep, job.z.shape, job.rank, job.ar_factors,
+                            job.fourier.shape[1], job.spec, np.flatnonzero(np.isnan(job.z)))
+        self.seconds = {"tune": 0.0, "sample": 0.0}
+        n_time = job.z.shape[1]
+        self.probe_series, self.probe_times = np.divmod(job.probe_cells, n_time)
+
+    def sweep(self, sweeps: int, tuning: bool, report) -> np.ndarray:
+        """Run ``sweeps`` sweeps; their probe rows (none when tuning). ``report(k)``: k done."""
+        start = last = time.perf_counter()
+        rows = []
+        pending = 0
+        for _ in range(sweeps):
+            try:
+                self.sampler.sweep(self.state, tuning=tuning)
+            except np.linalg.LinAlgError as err:
+                rows = getattr(err, "rows", ())
+                where = (" for series " + ", ".join(repr(self.job.series[i]) for i in rows)
+                         if len(rows) else "")
+                raise ChainFailure(f"a Gibbs step failed{where}: {err}",
+                                   self.describe()) from None
+            if not self.sampler.finite(self.state):
+                raise ChainFailure("a Gibbs step gave a value that is not finite",
+                                   self.describe())
+            if not tuning:
+                self.store.keep(self.state)
+                rows.append(self.probe())
+            pending += 1
+            if time.perf_counter() - last > chains_.REPORT_EVERY:
+                report(pending)
+                pending, last = 0, time.perf_counter()
+        report(pending)
+        self.seconds["tune" if tuning else "sample"] += time.perf_counter() - start
+        width = 2 * self.job.probe_cells.size + self.job.z.shape[0] * (1 + self.job.spec.own_ar)
+        return np.array(rows).reshape(len(rows), width)
+
+    def probe(self) -> np.ndarray:
+        """This sweep's probes: cell means and draws, noise sds, own innovation sds."""
+        s, n, t = self.state, self.probe_series, self.probe_times
+        mean = self.sampler.mean_at(s, n, t)
+        shock = (self.rng.standard_t(self.job.spec.noise_df, n.size)
+                 if self.job.spec.noise == "student_t" else self.rng.standard_normal(n.size))
+        parts = [mean, mean + s.noise[n] * shock, s.noise]
+        if self.job.spec.own_ar:
+            parts.append(s.own_sd * np.sqrt(1.0 - s.own_rho**2))
+        return np.concatenate(parts)
+
+    def describe(self) -> str:
+        """The state in the user's terms: the series with the smallest scales, the trend steps."""
+        s, names = self.state, self.job.series
+        lowest = np.argsort(s.noise)[:3]
+        text = "smallest noise sd: " + ", ".join(
+            f"{names[i]!r} {s.noise[i]:.3g}" for i in lowest)
+        if self.job.spec.own_ar:
+            i = int(np.argmin(s.own_sd))
+            text += f"; smallest own sd: {names[i]!r} {s.own_sd[i]:.3g} (rho {s.own_rho[i]:.3f})"
+        return text + "; trend step sd: " + ", ".join(f"{v:.3g}" for v in s.innovation) + \
+            " (standardised units)"
+
+    def result(self) -> _Chain:
+        return _Chain(self.store.arrays(), self.store.own_mean(), self.sampler.accepted,
+                      self.sampler.proposed, self.seconds)
 
 
 #: Posterior variables of the own paths that only this sampler keeps (see :func:`sample`).
 OWN_KEPT = ("own_gap", "own_mean")
 
-#: Seconds between progress reports of a chain.
-_REPORT_EVERY = 0.25
-
-def _run_in_processes(job: _Job, streams, cores: int, advance) -> list[_Chain]:
-    """Run the chains on ``cores`` worker processes; results in stream order.
-
-    Worker i runs chains i, i + cores, ... and reports sweeps done, its
-    results and any failure through one queue. The workers are ours alone,
-    so an interruption or a failure stops every one of them at once.
-    Workers are forked on Linux (no re-import of the caller's script, so
-    scripts need no ``if __name__ == "__main__"`` guard) and spawned
-    elsewhere, where forking a process with threads is unsafe.
-    """
-    context = multiprocessing.get_context("fork" if sys.platform == "linux" else "spawn")
-    reports = context.Queue()
-    workers = [context.Process(target=_run_chains, daemon=True,
-                               args=(job, list(enumerate(streams))[first::cores], reports))
-               for first in range(cores)]
-    results: dict[int, _Chain] = {}
-    finished = False
-    try:
-        for worker in workers:
-            worker.start()
-        while len(results) < len(streams):
-            try:
-                kind, index, payload = reports.get(timeout=0.1)
-            except queue.Empty:
-                if not any(worker.is_alive() for worker in workers):
-                    raise RuntimeError("a Gibbs chain process ended without its draws") from None
-                continue
-            if kind == "sweeps":
-                advance(payload)
-            elif kind == "failed":
-                raise RuntimeError(f"Gibbs chain {index + 1} failed:\n{payload}")
-            else:
-                results[index] = payload
-        finished = True
-    finally:
-        for worker in workers:
-            if not finished:  # interrupted or failed: stop the chains now
-                worker.terminate()
-            worker.join()
-    return [results[index] for index in range(len(streams))]
-
-
-def _run_chains(job: _Job, chains: list[tuple[int, np.random.SeedSequence]], reports) -> None:
-    """Chains in a worker process, on one BLAS thread (the chains share the cores).
-
-    The worker leaves interruptions to its parent: it ignores SIGINT (a
-    Ctrl-C reaches the whole process group) and dies quietly on SIGTERM,
-    which is how the parent stops it, instead of running a signal handler
-    inherited from the parent (the command line's raises an exception,
-    whose traceback the dying worker would print).
-    """
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
-    signal.signal(signal.SIGTERM, signal.SIG_DFL)
-    with threadpool_limits(1):
-        for index, stream in chains:
-            try:
-                chain = job.run(stream, lambda done, index=index: reports.put(
-                    ("sweeps", index, done)))
-            except Exception:
-                reports.put(("failed", index, traceback.format_exc()))
-                return
-            reports.put(("chain", index, chain))
-
 
 class _Store:
-    """Kept draws of one chain, in the PyMC model's variable names."""
+    """Kept draws of one chain, in the PyMC model's variable names, at most ``capacity``.
 
-    def __init__(self, draws, shape, rank, ar_factors, harmonics, spec: ModelSpec,
+    When full, every second kept draw is dropped and from then on every
+    second sweep is kept (and so on, doubling): memory stays bounded
+    however long a chain runs, and the kept draws stay evenly spread.
+    """
+
+    def __init__(self, capacity, shape, rank, ar_factors, harmonics, spec: ModelSpec,
                  gap_cells: np.ndarray):
         n_series, n_time = shape
         sizes = {"loading": (n_series, rank), "trend_innovation": (rank,), "level": (rank,),
@@ -806,30 +958,46 @@ class _Store:
                       "ar": (ar_factors, n_time), "short_loading": (n_series, ar_factors)}
         if spec.own_ar:
             sizes |= {"own_rho": (n_series,), "own": (n_series,)}
-        self.arrays = {name: np.empty((draws, *size)) for name, size in sizes.items()}
+        self.buffers = {name: np.empty((capacity, *size)) for name, size in sizes.items()}
         self.gap_cells = gap_cells
         self.own_sum = None
         if spec.own_ar:
-            self.arrays["own_gap"] = np.empty((draws, gap_cells.size), dtype="float32")
+            self.buffers["own_gap"] = np.empty((capacity, gap_cells.size), dtype="float32")
             self.own_sum = np.zeros(shape)
-        self.kept = 0
+        self.capacity, self.kept, self.thin, self.seen, self.own_count = capacity, 0, 1, 0, 0
 
-    def keep(self, i: int, s: _State) -> None:
+    def keep(self, s: _State) -> None:
+        """Offer this sweep's state; every ``thin``-th is kept."""
+        if self.own_sum is not None:
+            self.own_sum += s.own_path
+            self.own_count += 1
+        self.seen += 1
+        if self.seen % self.thin:
+            return
+        if self.kept == self.capacity:
+            for array in self.buffers.values():
+                half = array[1::2][: self.capacity // 2]
+                array[: half.shape[0]] = half
+            self.kept, self.thin = self.capacity // 2, 2 * self.thin
+            if self.seen % self.thin:
+                return
         values = {"loading": s.loading, "trend_innovation": s.innovation,
                   "level": s.trend[:, 0], "trend": s.trend, "noise": s.noise,
                   "seasonal_coef": s.coef, "ar_pacf": s.pacf, "ar": s.ar,
                   "short_loading": s.short_loading, "own_rho": s.own_rho, "own": s.own_sd}
-        if "ar_coef" in self.arrays:
+        if "ar_coef" in self.buffers:
             values["ar_coef"] = np.array([_levinson(k)[0][-1] for k in s.pacf])
         if self.own_sum is not None:
             values["own_gap"] = s.own_path.ravel()[self.gap_cells]
-            self.own_sum += s.own_path
-        for name, array in self.arrays.items():
-            array[i] = values[name]
+        for name, array in self.buffers.items():
+            array[self.kept] = values[name]
         self.kept += 1
 
+    def arrays(self) -> dict[str, np.ndarray]:
+        return {name: array[: self.kept] for name, array in self.buffers.items()}
+
     def own_mean(self) -> np.ndarray | None:
-        return None if self.own_sum is None else self.own_sum / max(self.kept, 1)
+        return None if self.own_sum is None else self.own_sum / max(self.own_count, 1)
 
 
 _DIMS = {
@@ -911,6 +1079,8 @@ def _own_marginal(resid: np.ndarray, base: np.ndarray, sd: np.ndarray, rho: np.n
     Returns
     -------
     logp : ndarray, shape (N,)
+        -inf for a row that cannot be evaluated (a precision that is not
+        numerically positive definite at its parameters).
     factor : StackedAr1
         The factorised Q + W.
     regression : tuple or None
@@ -931,24 +1101,49 @@ def _own_marginal(resid: np.ndarray, base: np.ndarray, sd: np.ndarray, rho: np.n
     """
     n_time = resid.shape[1]
     factor, terms = StackedAr1.regress(sd, rho, base, noise**-2.0, resid, design)
-    log_q = -n_time * np.log(np.maximum(sd, _TINY) ** 2) - (n_time - 1) * np.log1p(-rho**2)
-    logp = 0.5 * (-terms.quadratic + terms.log_weight + log_q - terms.log_det
-                  - terms.observed * np.log(2.0 * np.pi))
-    if design is None:
-        return logp, factor, None
-    regression = (terms.gram + np.eye(design.shape[0]) / prior**2, terms.cross)
-    chol = np.linalg.cholesky(regression[0])
-    half = np.linalg.solve(chol, regression[1][..., None])[..., 0]
-    logp += (0.5 * (half**2).sum(axis=1)
-             - np.log(np.diagonal(chol, axis1=1, axis2=2)).sum(axis=1)
-             - design.shape[0] * np.log(prior))
+    logp = 0.5 * (-terms.quadratic + terms.log_weight + ar1_log_det(sd, rho, n_time)
+                  - terms.log_det - terms.observed * np.log(2.0 * np.pi))
+    failed = terms.failed
+    if design is not None:
+        k = design.shape[0]
+        gram = np.where(failed[:, None, None], 0.0, terms.gram)
+        regression = (gram + np.eye(k) / prior**2, np.where(failed[:, None], 0.0, terms.cross))
+        chol, singular = _cholesky_rows(regression[0])
+        half = np.linalg.solve(chol, regression[1][..., None])[..., 0]
+        logp += (0.5 * (half**2).sum(axis=1)
+                 - np.log(np.diagonal(chol, axis1=1, axis2=2)).sum(axis=1)
+                 - k * np.log(prior))
+        failed = failed | singular
+    else:
+        regression = None
+    # A row that cannot be evaluated has no density there: a proposal to it is rejected.
+    logp = np.where(failed | ~np.isfinite(logp), -np.inf, logp)
     return logp, factor, regression
+
+
+def _cholesky_rows(matrices: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Cholesky factors of a stack of matrices (B, k, k) and which were not positive definite.
+
+    A failed matrix gets the identity as its factor, so the stack stays usable;
+    the caller discards its row.
+    """
+    try:
+        return np.linalg.cholesky(matrices), np.zeros(matrices.shape[0], dtype=bool)
+    except np.linalg.LinAlgError:
+        pass
+    chol = np.broadcast_to(np.eye(matrices.shape[1]), matrices.shape).copy()
+    singular = np.zeros(matrices.shape[0], dtype=bool)
+    for i, matrix in enumerate(matrices):
+        try:
+            chol[i] = np.linalg.cholesky(matrix)
+        except np.linalg.LinAlgError:
+            singular[i] = True
+    return chol, singular
 
 
 def _walk_logp(path: np.ndarray, step_sd: float, level_sd: float) -> float:
     """Log density of a Gaussian random walk with start ~ N(0, level_sd²)."""
     steps = np.diff(path)
-    step_sd = max(step_sd, np.sqrt(_TINY))
     return float(-0.5 * (path[0] / level_sd) ** 2 - 0.5 * (steps**2).sum() / step_sd**2
                  - steps.size * np.log(step_sd))
 
@@ -962,13 +1157,18 @@ def _expit(x: np.ndarray) -> np.ndarray:
     return 1.0 / (1.0 + np.exp(-x))
 
 
-def _given(fixed: float | None, default: float) -> float:
-    return default if fixed is None else fixed
+def _given(fixed: float | None, default: np.ndarray) -> np.ndarray:
+    return default if fixed is None else np.full(np.shape(default), fixed)
 
 
 def _gig_variance(squares: np.ndarray, counts: np.ndarray, prior: float,
-                  rng: np.random.Generator) -> np.ndarray:
+                  rng: np.random.Generator, floor: float = 0.0) -> np.ndarray:
     """Draw variances v with HalfNormal(prior) on sqrt(v) and n Gaussian terms of sum S.
+
+    The prior is truncated below at ``floor`` (a variance): draws under it are
+    drawn again, as in any rejection from a truncated density. Where nearly
+    all the conditional's mass lies under the floor (a series constant to
+    the last digit), the draw is the floor after a few rounds.
 
     The conditional density ∝ v^(p-1)·exp(-(a·v + b/v)/2) with p = (1 - n)/2,
     a = 1/prior², b = S is GIG(p, a, b). Its factor v^(p-1)·exp(-b/(2v)) is
@@ -983,20 +1183,22 @@ def _gig_variance(squares: np.ndarray, counts: np.ndarray, prior: float,
     b = np.maximum(np.asarray(squares, dtype="float64"), _TINY)
     n = np.broadcast_to(np.asarray(counts, dtype="float64"), b.shape)
     out = np.full(b.shape, np.nan)
-    todo = np.flatnonzero(n >= 2)
     for _ in range(_GIG_ROUNDS):
+        todo = np.flatnonzero(np.isnan(out) & (n >= 2))
         if not todo.size:
             break
         v = 0.5 * b[todo] / rng.gamma(0.5 * (n[todo] - 1.0))
-        accept = rng.random(todo.size) < np.exp(-0.5 * a * v)
+        accept = (rng.random(todo.size) < np.exp(-0.5 * a * v)) & (v >= floor)
         out[todo[accept]] = v[accept]
-        todo = todo[~accept]
-    rest = np.flatnonzero(np.isnan(out))
-    if rest.size:
+    for _ in range(_GIG_ROUNDS):
+        rest = np.flatnonzero(np.isnan(out))
+        if not rest.size:
+            break
         p = 0.5 * (1.0 - n[rest])
         y = geninvgauss.rvs(p, np.sqrt(a * b[rest]), random_state=rng)
-        out[rest] = np.sqrt(b[rest] / a) * np.atleast_1d(y)
-    return out
+        v = np.sqrt(b[rest] / a) * np.atleast_1d(y)
+        out[rest[v >= floor]] = v[v >= floor]
+    return np.where(np.isnan(out), floor, out)
 
 
 def _draw_dense(precision: np.ndarray, rhs: np.ndarray, rng: np.random.Generator) -> np.ndarray:

@@ -18,20 +18,28 @@ from scipy.linalg.lapack import dtbtrs
 
 from gapband import kernels
 
-#: Smallest innovation variance used, so a path with sd → 0 or ρ → 1 stays
-#: numerically positive definite.
-_TINY = 1e-10
-
 
 def ar1_entries(sd: np.ndarray, rho: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """The entries of each stationary AR(1) path's tridiagonal precision Q.
 
     Returns ``inner`` (the diagonal inside the path), ``end`` (the diagonal
     at its first and last step) and ``off`` (next to the diagonal), each of
-    shape (rows,), for marginal sds ``sd`` and coefficients ``rho``.
+    shape (rows,), for marginal sds ``sd`` and coefficients ``rho``. No floor
+    is applied: the priors bound sd below and rho above
+    (:data:`gapband.spec.SCALE_FLOOR`, :data:`gapband.spec.OWN_RHO_MAX`), so
+    this and :func:`ar1_log_det` describe the same matrix.
     """
-    innovation = np.maximum(np.maximum(sd, np.sqrt(_TINY)) ** 2 * (1.0 - rho**2), _TINY)
+    innovation = sd**2 * (1.0 - rho**2)
     return (1.0 + rho**2) / innovation, 1.0 / innovation, -rho / innovation
+
+
+def ar1_log_det(sd: np.ndarray, rho: np.ndarray, n_time: int) -> np.ndarray:
+    """log|Q| of each path's precision (:func:`ar1_entries`), from the same sd and rho.
+
+    Q's L·D·Lᵀ pivots are 1/v for the innovation variance v = sd²(1 - ρ²),
+    and 1/sd² at the last step; log|Q| = -log sd² - (T - 1)·log v.
+    """
+    return -np.log(sd**2) - (n_time - 1) * np.log(sd**2 * (1.0 - rho**2))
 
 
 @dataclass(frozen=True)
@@ -60,6 +68,10 @@ class StackedAr1:
                 resid: np.ndarray, design: np.ndarray | None) -> tuple[StackedAr1, Regression]:
         """Factorise, and sum what a regression with the AR(1) path as error needs.
 
+        A row that cannot be factorised (the matrix is not numerically
+        positive definite at its parameters) is marked in ``Regression.failed``
+        and its terms are meaningless; the other rows are unaffected.
+
         Parameters
         ----------
         sd, rho : ndarray, shape (rows,)
@@ -75,11 +87,10 @@ class StackedAr1:
         design = np.zeros((0, resid.shape[1])) if design is None else _c(design)
         k, rows = design.shape[0], resid.shape[0]
         products, sums = np.empty((rows, k + 1, k + 1)), np.empty((rows, 3))
-        _check(kernels.regression_terms(*ar1_entries(sd, rho), _c(resid), _c(base), _c(scale),
-                                        design, factor.diagonal, factor.lower, products, sums))
-        gram = products[:, :k, :k]
-        return factor, Regression(0.5 * (gram + gram.transpose(0, 2, 1)), products[:, :k, k],
-                                  products[:, k, k], *sums.T)
+        kernels.regression_terms(*ar1_entries(sd, rho), _c(resid), _c(base), _c(scale), design,
+                                 factor.diagonal, factor.lower, products, sums)
+        return factor, Regression(products[:, :k, :k], products[:, :k, k], products[:, k, k],
+                                  *sums.T)
 
     @classmethod
     def _empty(cls, shape: tuple[int, int]) -> StackedAr1:
@@ -103,7 +114,8 @@ class Regression:
     """Per-row terms of y = X·β + path + noise with the AR(1) path integrated out.
 
     The error's precision is ``K⁻¹ = W - W(Q + W)⁻¹W`` (Woodbury), so each
-    term costs tridiagonal solves only (:meth:`StackedAr1.regress`).
+    term costs tridiagonal solves only (:meth:`StackedAr1.regress`, which
+    sums them in a form that does not cancel).
     """
 
     gram: np.ndarray  # XᵀK⁻¹X, shape (rows, k, k)
@@ -112,6 +124,11 @@ class Regression:
     log_det: np.ndarray  # log|Q + W|, shape (rows,)
     log_weight: np.ndarray  # the sum of log W over observed cells, shape (rows,)
     observed: np.ndarray  # observed cells, shape (rows,)
+
+    @property
+    def failed(self) -> np.ndarray:
+        """Rows whose factorisation failed, bool (rows,)."""
+        return np.isnan(self.log_det)
 
 
 def _c(a: np.ndarray) -> np.ndarray:
@@ -151,34 +168,91 @@ def draw_ar1_given_noisy(
         rows share one tridiagonal factorisation (no Python loop over rows).
     """
     seen = ~np.isnan(resid)
-    weight = seen / np.maximum(noise_sd, np.sqrt(_TINY))[:, None] ** 2
+    weight = seen / noise_sd[:, None] ** 2
     rhs = np.where(seen, resid, 0.0) * weight
     return StackedAr1.of(sd, rho, weight).draw(rhs, rng)
 
 
-def draw_banded(ab: np.ndarray, rhs: np.ndarray, rng: np.random.Generator) -> np.ndarray:
-    """One exact draw of x ~ N(Q⁻¹·rhs, Q⁻¹) for a banded precision Q.
+@dataclass(frozen=True)
+class BorderedGaussian:
+    """A Gaussian in canonical form whose precision is banded, with a dense border, factorised.
 
-    Parameters
+    The precision is ``[[Q, B], [Bᵀ, C]]`` with Q banded (n × n, lower banded
+    form ``ab``: ``ab[i, j] = Q[j + i, j]``, the layout of
+    scipy.linalg.cholesky_banded with ``lower=True``), B dense (n × m) and C
+    dense (m × m, small; m may be 0); the canonical mean parameters are
+    ``rhs`` (n,) and ``corner_rhs`` (m,). With Q = L·Lᵀ, V = L⁻¹B and w =
+    L⁻¹·rhs, the Schur complement ``S = C - VᵀV`` is β's marginal precision
+    (Rue & Held, Gaussian Markov Random Fields, 2005, section 2.3: the
+    conditional of a GMRF); factorising costs O(n·u·(u + m)).
+
+    Attributes
     ----------
-    ab : ndarray, shape (u + 1, n)
-        Q in lower banded form (``ab[i, j] = Q[j + i, j]``, the layout of
-        scipy.linalg.cholesky_banded with ``lower=True``); u is the lower bandwidth.
-    rhs : ndarray, shape (n,)
-        The canonical mean parameter b (the mean is Q⁻¹b).
-    rng : numpy Generator
+    log_det : float
+        log|precision| = log|Q| + log|S|.
+    quadratic : float
+        ``bᵀ·precision⁻¹·b`` for b = (rhs, corner_rhs): what, with the prior's
+        log-determinant, makes a Gaussian model's marginal likelihood
+        (:func:`gaussian_log_evidence`).
+    """
 
-    Returns
-    -------
-    ndarray, shape (n,)
+    lower: np.ndarray
+    rhs: np.ndarray
+    border: np.ndarray
+    schur: np.ndarray
+    beta_mean: np.ndarray
+    log_det: float
+    quadratic: float
 
-    Notes
-    -----
+    @classmethod
+    def of(cls, ab: np.ndarray, rhs: np.ndarray, border: np.ndarray | None = None,
+           corner: np.ndarray | None = None, corner_rhs: np.ndarray | None = None,
+           ) -> BorderedGaussian:
+        """Factorise; LinAlgError when the precision is not numerically positive definite."""
+        n = rhs.size
+        if border is None:
+            border, corner, corner_rhs = np.zeros((n, 0)), np.zeros((0, 0)), np.zeros(0)
+        lower = cholesky_banded(ab, lower=True, check_finite=False)
+        solved = solve_lower(lower, np.column_stack([border, rhs]))
+        v, w = solved[:, :-1], solved[:, -1]
+        schur = corner - v.T @ v
+        schur_rhs = corner_rhs - v.T @ w
+        factor = np.linalg.cholesky(schur) if schur.size else schur
+        half = np.linalg.solve(factor, schur_rhs) if schur.size else schur_rhs
+        beta_mean = np.linalg.solve(factor.T, half) if schur.size else schur_rhs
+        log_det = 2.0 * (np.log(lower[0]).sum() + np.log(np.diagonal(factor)).sum())
+        return cls(lower, rhs, border, factor, beta_mean, float(log_det),
+                   float(w @ w + half @ half))
+
+    def draw(self, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+        """One exact draw (x, β): β from its marginal, then x given β (Rue & Held, 2005)."""
+        beta = self.beta_mean
+        if self.schur.size:
+            beta = beta + np.linalg.solve(self.schur.T, rng.standard_normal(beta.size))
+        return draw_factored(self.lower, self.rhs - self.border @ beta, rng), beta
+
+
+def gaussian_log_evidence(posterior: BorderedGaussian, prior_log_det: float,
+                          data_quadratic: float, data_log_det: float, observed: int) -> float:
+    """Log marginal likelihood of data y = A·x + e, e ~ N(0, W⁻¹), x ~ N(0, Q⁻¹), x integrated out.
+
+    ``-yᵀWy/2 + bᵀP⁻¹b/2 + (log|W| + log|Q| - log|P|)/2 - n·log(2π)/2`` with
+    P = Q + AᵀWA the posterior precision and b = AᵀWy (Rue & Held, 2005,
+    section 2.3: the Gaussian integral); ``data_quadratic`` is yᵀWy,
+    ``data_log_det`` log|W| over the ``observed`` cells.
+    """
+    return 0.5 * (posterior.quadratic - data_quadratic + data_log_det + prior_log_det
+                  - posterior.log_det - observed * np.log(2.0 * np.pi))
+
+
+def draw_banded(ab: np.ndarray, rhs: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    """One exact draw of x ~ N(Q⁻¹·rhs, Q⁻¹) for a banded precision Q (lower banded ``ab``).
+
     With Q = L·Lᵀ, ``x = Q⁻¹b + L⁻ᵀz`` for standard normal z has covariance
     Q⁻¹ (Rue & Held, 2005, algorithm 2.5); the factorisation and both solves
     are banded, so a draw costs O(n·u²).
     """
-    return draw_factored(cholesky_banded(ab, lower=True, check_finite=False), rhs, rng)
+    return BorderedGaussian.of(ab, rhs).draw(rng)[0]
 
 
 def draw_factored(lower: np.ndarray, rhs: np.ndarray, rng: np.random.Generator) -> np.ndarray:
@@ -190,38 +264,14 @@ def draw_factored(lower: np.ndarray, rhs: np.ndarray, rng: np.random.Generator) 
                        transpose=True)
 
 
-def draw_bordered(
-    ab: np.ndarray,
-    rhs: np.ndarray,
-    border: np.ndarray,
-    corner: np.ndarray,
-    corner_rhs: np.ndarray,
-    rng: np.random.Generator,
-) -> tuple[np.ndarray, np.ndarray]:
+def draw_bordered(ab: np.ndarray, rhs: np.ndarray, border: np.ndarray, corner: np.ndarray,
+                  corner_rhs: np.ndarray, rng: np.random.Generator,
+                  ) -> tuple[np.ndarray, np.ndarray]:
     """Exact joint draw of (x, β) whose precision is banded in x with a dense border.
 
-    The joint precision is ``[[Q, B], [Bᵀ, C]]`` with Q banded (n × n, lower
-    banded form ``ab``), B dense (n × m) and C dense (m × m, small); the
-    canonical mean parameters are ``rhs`` (n,) and ``corner_rhs`` (m,). β is
-    drawn from its marginal, whose precision is the Schur complement
-    ``C - Bᵀ·Q⁻¹·B``, then x given β (Rue & Held, 2005, section 2.3: the
-    conditional of a GMRF) — m banded solves, so cost O(n·u·(u + m)).
-
-    Returns
-    -------
-    x : ndarray, shape (n,)
-    beta : ndarray, shape (m,)
+    See :class:`BorderedGaussian` for the layout; returns x (n,) and β (m,).
     """
-    lower = cholesky_banded(ab, lower=True, check_finite=False)
-    # With Q = L·Lᵀ: Bᵀ·Q⁻¹·B = VᵀV and Bᵀ·Q⁻¹·b = Vᵀw for V = L⁻¹B, w = L⁻¹b.
-    solved = solve_lower(lower, np.column_stack([border, rhs]))
-    v, w = solved[:, :-1], solved[:, -1]
-    schur = corner - v.T @ v
-    schur_rhs = corner_rhs - v.T @ w
-    factor = np.linalg.cholesky(schur)
-    beta = np.linalg.solve(schur, schur_rhs) + np.linalg.solve(
-        factor.T, rng.standard_normal(corner_rhs.size))
-    return draw_factored(lower, rhs - border @ beta, rng), beta
+    return BorderedGaussian.of(ab, rhs, border, corner, corner_rhs).draw(rng)
 
 
 def solve_lower(lower: np.ndarray, b: np.ndarray, transpose: bool = False) -> np.ndarray:

@@ -14,21 +14,28 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Literal
 
-import arviz as az
 import numpy as np
 import pymc as pm
 import xarray as xr
 
-from gapband import gibbs
+from gapband import convergence, gibbs
+from gapband.chains import DEFAULT_CHAINS, GIBBS_TUNE, KEPT_DRAWS, TIME_BUDGET, Plan
+from gapband.convergence import ESS_MIN, R_HAT_MAX
 from gapband.errors import UsageError
 from gapband.model import RAW_VARIABLES, BuiltModel, build, draw_arrays, mean_at
 from gapband.spec import ModelSpec
 
 Method = Literal["nuts", "advi", "gibbs"]
 
-#: Thresholds below which a NUTS fit is reported as not converged.
-R_HAT_MAX = 1.01
-ESS_BULK_MIN = 400
+#: Draws and warm-up per chain of NUTS and ADVI when not given (they do not run by rounds).
+NUTS_DRAWS = 1000
+
+
+def kept_draws(method: str, draws: int | None) -> int:
+    """Draws per chain a fit keeps: ``draws``, or the method's default when None."""
+    if draws is not None:
+        return draws
+    return KEPT_DRAWS if method == "gibbs" else NUTS_DRAWS
 
 #: NUTS step-size adaptation target; above the usual 0.8 because the noise,
 #: short-term and own-persistence terms trade off along curved ridges.
@@ -47,10 +54,6 @@ ELBO_TOLERANCE = 1e-3
 #: Step size of ADVI's adaptive optimiser; PyMC's default (1e-3) needs
 #: several times more iterations on our models to reach the same ELBO.
 ADVI_LEARNING_RATE = 0.01
-
-#: Cells whose predicted mean enters R-hat and ESS: factor signs and order are
-#: not identified, so diagnostics look at quantities that are.
-DIAGNOSTIC_CELLS = 100
 
 
 @dataclass(frozen=True)
@@ -91,11 +94,12 @@ def fit(
     panel: xr.Dataset,
     spec: ModelSpec,
     *,
-    method: Method = "nuts",
-    draws: int = 1000,
-    tune: int = 1000,
-    chains: int = 2,
+    method: Method = "gibbs",
+    draws: int | None = None,
+    tune: int | None = None,
+    chains: int = DEFAULT_CHAINS,
     seed: int = 0,
+    budget: float = TIME_BUDGET,
     progress: bool = False,
     max_iterations: int = 50_000,
     cores: int | None = None,
@@ -111,10 +115,16 @@ def fit(
     method : {"nuts", "advi", "gibbs"}
         NUTS (nutpie when installed, else PyMC's sampler), mean-field ADVI, or
         the exact block-Gibbs sampler (:mod:`gapband.gibbs`).
-    draws, tune, chains : int
-        Posterior draws per chain, warm-up iterations per chain (NUTS; burn-in
-        sweeps for Gibbs), chains (NUTS, Gibbs; ADVI gives one chain of
-        ``draws`` draws).
+    draws, tune : int, optional
+        Posterior draws per chain and warm-up iterations per chain (NUTS;
+        burn-in sweeps for Gibbs, default :data:`GIBBS_TUNE`). Without
+        ``draws``, Gibbs samples in rounds until the chains agree
+        (:mod:`gapband.convergence`) or ``budget`` is spent; NUTS and ADVI
+        take :data:`NUTS_DRAWS`.
+    chains : int
+        Chains (NUTS, Gibbs; ADVI gives one chain of ``draws`` draws).
+    budget : float
+        Seconds of Gibbs sampling after which rounds stop, converged or not.
     seed : int
         Seed of every random choice; the same seed gives the same draws.
     progress : bool
@@ -144,8 +154,12 @@ def fit(
                          + ", ".join(repr(m) for m in METHODS))
     for name, value in (("draws", draws), ("tune", tune), ("chains", chains),
                         ("max_iterations", max_iterations)):
+        if value is None and name in ("draws", "tune"):
+            continue
         if not isinstance(value, int) or value < (0 if name == "tune" else 1):
             raise UsageError(f"{name} = {value!r} must be a positive integer")
+    if not budget > 0:
+        raise UsageError(f"budget = {budget!r} must be a positive number of seconds")
     if rank is not None and (isinstance(rank, bool) or not isinstance(rank, int) or rank < 1):
         raise UsageError(f"rank = {rank!r} must be a positive integer (or None: chosen from "
                          "the data)")
@@ -155,7 +169,7 @@ def fit(
     run = METHODS[method]
     posterior, diagnostics, run_timings = run(
         built, draws=draws, tune=tune, chains=chains, seed=seed, progress=progress,
-        max_iterations=max_iterations, cores=_cores(chains, cores),
+        max_iterations=max_iterations, cores=_cores(chains, cores), budget=budget,
     )
     timings |= run_timings
     start = time.perf_counter()
@@ -164,7 +178,8 @@ def fit(
     keep += [name for name in gibbs.OWN_KEPT if name in posterior]
     posterior = posterior[keep]
     posterior = posterior.drop_vars([c for c in posterior.coords if c not in posterior.dims])
-    diagnostics = _identified_diagnostics(posterior, built, panel, seed) | diagnostics
+    if method == "nuts":
+        diagnostics = _identified_diagnostics(posterior, built, panel, seed) | diagnostics
     diagnostics["warnings"] = _warnings(method, diagnostics)
     diagnostics["converged"] = not diagnostics["warnings"]
     timings["diagnostics"] = time.perf_counter() - start
@@ -183,9 +198,11 @@ def _cores(chains: int, cores: int | None) -> int:
     return max(1, min(chains, cores or os.cpu_count() or 1))
 
 
-def _nuts(built: BuiltModel, *, draws: int, tune: int, chains: int, seed: int,
-          progress: bool, max_iterations: int, cores: int) -> tuple[xr.Dataset, dict, dict]:
+def _nuts(built: BuiltModel, *, draws: int | None, tune: int | None, chains: int, seed: int,
+          progress: bool, max_iterations: int, cores: int,
+          budget: float) -> tuple[xr.Dataset, dict, dict]:
     timings = {}
+    draws, tune = draws or NUTS_DRAWS, NUTS_DRAWS if tune is None else tune
     nutpie = _nutpie()
     if nutpie is not None:
         start = time.perf_counter()
@@ -207,8 +224,10 @@ def _nuts(built: BuiltModel, *, draws: int, tune: int, chains: int, seed: int,
                              "sampler": "nutpie" if nutpie else "pymc"}, timings
 
 
-def _advi(built: BuiltModel, *, draws: int, tune: int, chains: int, seed: int, cores: int,
-          progress: bool, max_iterations: int) -> tuple[xr.Dataset, dict, dict]:
+def _advi(built: BuiltModel, *, draws: int | None, tune: int | None, chains: int, seed: int,
+          cores: int, progress: bool, max_iterations: int,
+          budget: float) -> tuple[xr.Dataset, dict, dict]:
+    draws = draws or NUTS_DRAWS
     stop = _ElboConvergence(ELBO_WINDOW, ELBO_LAG, ELBO_TOLERANCE)
     start = time.perf_counter()
     with built.model:
@@ -230,12 +249,15 @@ def _advi(built: BuiltModel, *, draws: int, tune: int, chains: int, seed: int, c
     return idata.posterior, {"elbo": elbo}, timings
 
 
-def _gibbs(built: BuiltModel, *, draws: int, tune: int, chains: int, seed: int,
-           progress: bool, max_iterations: int, cores: int) -> tuple[xr.Dataset, dict, dict]:
+def _gibbs(built: BuiltModel, *, draws: int | None, tune: int | None, chains: int, seed: int,
+           progress: bool, max_iterations: int, cores: int,
+           budget: float) -> tuple[xr.Dataset, dict, dict]:
     coords = {name: np.asarray(values) for name, values in built.model.coords.items()}
+    plan = Plan(tune=GIBBS_TUNE if tune is None else tune, draws=draws, budget=budget)
     return gibbs.sample(built.z, built.fourier.values, built.spec, rank=built.rank,
-                        ar_factors=built.ar_factors, coords=coords, draws=draws, tune=tune,
-                        chains=chains, seed=seed, cores=cores, progress=progress)
+                        ar_factors=built.ar_factors, coords=coords, plan=plan,
+                        chains=chains, seed=seed, cores=cores, progress=progress,
+                        keep=KEPT_DRAWS)
 
 
 #: Inference methods by name; each returns (posterior, diagnostics, timings).
@@ -273,45 +295,37 @@ class _ElboConvergence:
 
 def _identified_diagnostics(posterior: xr.Dataset, built: BuiltModel, panel: xr.Dataset,
                             seed: int) -> dict:
-    """R-hat and bulk ESS of quantities invariant to factor sign and order.
+    """The convergence verdict of NUTS draws, on the probes Gibbs is judged on.
 
-    These are what the fills depend on: the predicted mean at up to
-    DIAGNOSTIC_CELLS cells (missing cells first, as those are what we fill)
-    and each series' idiosyncratic sd, sqrt(noise² + own²) — the spread
-    the fills carry beyond the shared part. How that spread divides between
-    white noise and own persistence is weakly identified on real data and
-    moves slowly in any sampler; it is reported per part in ``r_hat_parts``
-    but does not decide convergence.
+    The same quantities as :mod:`gapband.convergence` (predicted means and
+    one predictive draw at up to :data:`gapband.convergence.PROBE_CELLS`
+    cells, missing cells first; noise and own innovation sds), computed from
+    the kept draws after sampling.
     """
     n_chain, n_draw = posterior.sizes["chain"], posterior.sizes["draw"]
-    result = {"n_draws": int(n_chain * n_draw), "r_hat_max": None, "ess_bulk_min": None}
-    if n_chain < 2:  # R-hat needs several chains; an approximation has one
-        return result
     rng = np.random.default_rng(seed)
     missing = np.flatnonzero(panel["value"].isnull().values.ravel())
     pool = missing if missing.size else built.observed
-    cells = np.sort(rng.choice(pool, size=min(DIAGNOSTIC_CELLS, pool.size), replace=False))
+    cells = np.sort(rng.choice(pool, size=min(convergence.PROBE_CELLS, pool.size),
+                               replace=False))
     arrays = draw_arrays(posterior, built)
     if not missing.size:  # own paths kept at missing cells only: check the rest
         arrays.pop("own_gap", None)
-    means = mean_at(arrays, cells, panel.sizes["time"])
-    checked = xr.Dataset(
-        {"cell_mean": (("chain", "draw", "cell"), means.reshape(n_chain, n_draw, -1))}
-    )
-    parts = [name for name, fixed in (("noise", built.spec.fixed.noise),
-                                      ("own", built.spec.fixed.own))
-             if name in posterior and fixed is None]  # a fixed value has no R-hat
-    if parts:
-        spread = posterior["noise"] ** 2 + (posterior["own"] ** 2 if "own" in posterior else 0)
-        checked["idiosyncratic_sd"] = np.sqrt(spread)
-    r_hat = az.rhat(checked)
-    ess = az.ess(checked, method="bulk")
-    result["r_hat_max"] = float(max(np.nanmax(r_hat[v].values) for v in r_hat.data_vars))
-    result["ess_bulk_min"] = float(min(np.nanmin(ess[v].values) for v in ess.data_vars))
-    if parts:
-        by_part = az.rhat(posterior[parts])
-        result["r_hat_parts"] = {name: float(np.nanmax(by_part[name].values)) for name in parts}
-    return result
+    n_time = panel.sizes["time"]
+    means = mean_at(arrays, cells, n_time)
+    noise = arrays["noise"]
+    draws = means + noise[:, cells // n_time] * rng.standard_normal(means.shape)
+    own = (arrays["own"] * np.sqrt(1.0 - arrays["own_rho"] ** 2)
+           if built.spec.own_ar else None)
+
+    def shaped(values):
+        return None if values is None else values.reshape(n_chain, n_draw, -1)
+
+    series = panel["series"].values
+    checked = convergence.probes(shaped(means), shaped(draws), shaped(noise), shaped(own),
+                                 series)
+    return convergence.assess(checked).as_dict() | {
+        "chain_width_ratio": convergence.chain_widths(checked, series[cells // n_time])}
 
 
 def _warnings(method: str, diagnostics: dict) -> list[str]:
@@ -327,15 +341,20 @@ def _warnings(method: str, diagnostics: dict) -> list[str]:
                 + "; raise max_iterations or use method 'nuts'"
             )
         return messages
-    r_hat, ess = diagnostics["r_hat_max"], diagnostics["ess_bulk_min"]
+    r_hat = diagnostics["r_hat_max"]
+    ess = (None if r_hat is None
+           else min(diagnostics["ess_bulk_min"], diagnostics["ess_tail_min"]))
     if r_hat is None:
         messages.append("R-hat and ESS need at least 2 chains; convergence is unchecked")
+    stopped = diagnostics.get("stopped_by")
+    advice = ("the time budget ran out first; raise it (--budget) or fit fewer series at once"
+              if stopped == "budget" else "run longer (leave --draws unset, or raise it)")
     if r_hat is not None and not r_hat <= R_HAT_MAX:
-        messages.append(f"R-hat reaches {r_hat:.3f} (> {R_HAT_MAX}): the chains disagree; "
-                        "run longer (more tune and draws)")
-    if ess is not None and not ess >= ESS_BULK_MIN:
-        messages.append(f"bulk ESS is as low as {ess:.0f} (< {ESS_BULK_MIN}); "
-                        "draw more samples")
+        messages.append(f"R-hat reaches {r_hat:.3f} (> {R_HAT_MAX}) at "
+                        f"{diagnostics['worst']}: the chains disagree; {advice}")
+    if ess is not None and not ess >= ESS_MIN:
+        messages.append(f"ESS is as low as {ess:.0f} (< {ESS_MIN}): interval bounds are "
+                        f"noisy; {advice}")
     if diagnostics["divergences"]:
         messages.append(f"{diagnostics['divergences']} divergent transitions: the posterior "
                         "may be explored incompletely; intervals may be too narrow")

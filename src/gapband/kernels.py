@@ -14,7 +14,8 @@ The AR(1) precision Q of row i has ``inner[i]`` on its diagonal
 (``end[i]`` at the first and last step) and ``off[i]`` next to it
 (:func:`gapband.gmrf.ar1_entries`); the observation precision W is added
 to its diagonal. The kernels that factorise return the number of a row whose factorisation failed (a
-pivot that is not positive), or -1.
+pivot that is not positive), or -1; :func:`regression_terms` marks such rows
+and goes on.
 """
 
 from __future__ import annotations
@@ -95,23 +96,35 @@ def regression_terms(inner, end, off, resid, base, scale, design, diagonal, lowe
     ``resid`` and X = ``design`` (k, T), factorises Q + W into ``diagonal``
     and ``lower`` and fills, for each row,
 
-    - ``products`` (rows, k + 1, k + 1): [X y]ᵀK⁻¹[X y] with K⁻¹ = W -
-      W(Q + W)⁻¹W, computed as (W[X y])ᵀ([X y] - (Q + W)⁻¹W[X y]);
+    - ``products`` (rows, k + 1, k + 1): A'K⁻¹A for A = [X y], with K⁻¹ = W -
+      W(Q + W)⁻¹W. It is computed as (A - Â)'W(A - Â) + Â'QÂ with Â = (Q +
+      W)⁻¹WA, and Â'QÂ as a sum of squared AR(1) innovations: a sum of
+      Gram matrices, positive semi-definite in floating point too. The
+      shorter form A'WA - Â'WA cancels when the noise is small beside the
+      path and can lose positive definiteness;
     - ``sums`` (rows, 3): log|Q + W|, the sum of log W over observed cells,
       and the number of observed cells.
+
+    A row whose factorisation fails (a pivot that is not positive) gets NaN
+    in ``sums[i, 0]`` and the others go on; returns the number of such rows.
     """
     rows, n_time = resid.shape
     k = design.shape[0]
     weighted = np.empty((k + 1, n_time))  # W[X y], one column per row
-    remainder = np.empty((k + 1, n_time))  # forward solves, then [X y] - (Q + W)⁻¹W[X y]
+    remainder = np.empty((k + 1, n_time))  # forward solves
     inverse = np.empty(n_time)
-    later = np.empty(k + 1)
+    later = np.empty(k + 1)  # Â at the next step
+    now = np.empty(k + 1)  # Â at this step
+    failed = 0
     for i in range(rows):
         e, w_scale = off[i], scale[i]
+        innovation = 1.0 / end[i]  # the AR(1) innovation variance v
+        rho = -e * innovation
         log_det = log_weight = observed = 0.0
         # log|Q + W| as a running product, folded into a log when it strays
         # far from 1: one log per many steps instead of one per step.
         product, inv, ell = 1.0, 0.0, 0.0
+        ok = True
         # Forward: factorise and substitute forward.
         for t in range(n_time):
             b = base[i, t]
@@ -119,7 +132,8 @@ def regression_terms(inner, end, off, resid, base, scale, design, diagonal, lowe
             ell = e * inv
             d = _prior_diagonal(t, n_time, inner[i], end[i]) + w - ell * e
             if not d > 0.0:
-                return i
+                ok = False
+                break
             inv = 1.0 / d
             inverse[t] = inv
             diagonal[i, t] = d
@@ -142,18 +156,42 @@ def regression_terms(inner, end, off, resid, base, scale, design, diagonal, lowe
             else:
                 for j in range(k + 1):
                     remainder[j, t] = weighted[j, t] - ell * remainder[j, t - 1]
+        if not ok:
+            failed += 1
+            sums[i, 0] = np.nan
+            continue
         lower[i, n_time - 1] = 0.0
         log_det += np.log(product)
-        # Backward: finish the solves, keeping [X y] minus the solution.
+        # Backward: finish the solves and sum the two Gram matrices.
+        total = products[i]
+        total[:, :] = 0.0
         later[:] = 0.0
         for t in range(n_time - 1, -1, -1):
             ell = lower[i, t]
+            w = base[i, t] * w_scale
             for j in range(k + 1):
-                solved = remainder[j, t] * inverse[t] - ell * later[j]
-                later[j] = solved
-                remainder[j, t] = (design[j, t] if j < k else resid[i, t]) - solved
-        products[i] = weighted @ remainder.T
+                now[j] = remainder[j, t] * inverse[t] - ell * later[j]
+            for j in range(k + 1):
+                r_j = (design[j, t] if j < k else resid[i, t]) - now[j]
+                if t < n_time - 1:
+                    step_j = later[j] - rho * now[j]
+                for m in range(j + 1):
+                    r_m = (design[m, t] if m < k else resid[i, t]) - now[m]
+                    value = w * r_j * r_m
+                    if t < n_time - 1:
+                        value += step_j * (later[m] - rho * now[m]) / innovation
+                    total[j, m] += value
+            for j in range(k + 1):
+                later[j] = now[j]
+        # The first step: x_0²/sd² with sd² = v/(1 - ρ²) (Q itself when there is one step).
+        first = (1.0 - rho * rho) / innovation
+        for j in range(k + 1):
+            for m in range(j + 1):
+                total[j, m] += first * later[j] * later[m]
+        for j in range(k + 1):
+            for m in range(j):
+                total[m, j] = total[j, m]
         sums[i, 0] = log_det
         sums[i, 1] = log_weight + observed * np.log(w_scale)
         sums[i, 2] = observed
-    return -1
+    return failed

@@ -14,11 +14,13 @@ Prior forms, chosen so that an exact block-Gibbs sampler can share them:
   carry the scale), partial autocorrelations ~ Uniform(-1, 1) mapped to AR
   coefficients by the Durbin-Levinson recursion.
 - ``e[n] = own_sd[n]·u[n]``, ``u[n]`` a stationary AR(1) with unit marginal
-  variance and coefficient ~ Uniform(0, 1), ``own_sd`` ~ HalfNormal(priors.own).
+  variance and coefficient ~ Uniform(0, OWN_RHO_MAX), ``own_sd`` ~ HalfNormal(priors.own).
 - ``ε[n,t]`` ~ Normal(0, noise[n]) or Student-t(noise_df), ``noise`` ~
   HalfNormal(priors.noise).
 
-Every scale has a HalfNormal prior on the sd: given the rest, the variance
+Every scale has a HalfNormal prior on the sd, truncated below at a floor
+(:data:`gapband.spec.SCALE_FLOOR`, :data:`gapband.spec.STEP_FLOOR`) that keeps
+every precision of the sampler well posed: given the rest, the variance
 then has a generalised inverse Gaussian conditional, which can be drawn
 exactly (scipy.stats.geninvgauss); the block-Gibbs sampler
 (:mod:`gapband.gibbs`) does so and samples this same model. Sign and
@@ -42,7 +44,7 @@ import xarray as xr
 
 from gapband.errors import FitError
 from gapband.panel import step_of
-from gapband.spec import ModelSpec, check_against
+from gapband.spec import OWN_RHO_MAX, SCALE_FLOOR, STEP_FLOOR, ModelSpec, check_against
 
 # A pip-installed PyTensor cannot link a system BLAS and says so at its first
 # compile; it falls back to NumPy's BLAS, which serves these models well.
@@ -316,9 +318,11 @@ def _fourier(panel: xr.Dataset, spec: ModelSpec) -> xr.DataArray:
     return xr.DataArray(values, dims=("time", "harmonic"), coords={"harmonic": labels})
 
 
-def _scale(name: str, prior: float, fixed: float | None, size: int, dims: str):
+def _scale(name: str, prior: float, fixed: float | None, size: int, dims: str,
+           floor: float = SCALE_FLOOR):
+    """HalfNormal(prior) truncated below at ``floor`` (see :data:`gapband.spec.SCALE_FLOOR`)."""
     if fixed is None:
-        return pm.HalfNormal(name, sigma=prior, dims=dims)
+        return pm.Truncated(name, pm.HalfNormal.dist(sigma=prior), lower=floor, dims=dims)
     return pm.Deterministic(name, pt.as_tensor(np.full(size, fixed)), dims=dims)
 
 
@@ -332,7 +336,7 @@ def _shared(spec: ModelSpec, rank: int, n_series: int, fourier: np.ndarray):
             dims=("series", "factor"),
         )
     innovation = _scale("trend_innovation", priors.trend_innovation,
-                        spec.fixed.trend_innovation, rank, "factor")
+                        spec.fixed.trend_innovation, rank, "factor", floor=STEP_FLOOR)
     level = pm.Normal("level", 0.0, priors.level, dims="factor")
     # Non-centred: the sampler moves unit steps, the walk is their scaled sum.
     steps = pm.Normal("trend_steps", 0.0, 1.0, dims=("factor", "step"))
@@ -364,7 +368,7 @@ def _short_term(spec: ModelSpec, ar_factors: int):
 
 
 def _own(spec: ModelSpec, n_series: int):
-    rho = pm.Uniform("own_rho", 0.0, 1.0, dims="series")
+    rho = pm.Uniform("own_rho", 0.0, OWN_RHO_MAX, dims="series")
     sd = _scale("own", spec.priors.own, spec.fixed.own, n_series, "series")
     # The unit path's density does not involve sd, which keeps the sd free of
     # the funnel a centred scale would create.

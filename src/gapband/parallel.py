@@ -752,8 +752,10 @@ def _merge(panel: xr.Dataset, blocks: list[Block], outcomes: list[BlockOutcome],
     shape = (panel.sizes["series"], panel.sizes["time"])
     merged = {name: np.full(shape, np.nan) for name in names}
     offset = np.full(shape[0], np.nan)
+    unconverged = np.zeros(shape, dtype=bool)
     for block, outcome in filled:
         rows, core = np.asarray(block.rows), slice(*block.core)
+        unconverged[rows, core] = not outcome.summary["diagnostics"]["converged"]
         for name in names:
             merged[name][rows, core] = outcome.core[name].transpose(
                 "series", "time").values
@@ -769,7 +771,8 @@ def _merge(panel: xr.Dataset, blocks: list[Block], outcomes: list[BlockOutcome],
         result[name] = (("series", "time"), merged[name], template[name].attrs)
     if "component_offset" in template:
         result["component_offset"] = ("series", offset, template["component_offset"].attrs)
-    result = flags.assign(result, **dataclasses.asdict(options.rules))
+    result = flags.assign(result, **dataclasses.asdict(options.rules),
+                          unconverged=xr.DataArray(unconverged, dims=("series", "time")))
     if not observed_unchanged(panel, result):  # a guard on our own code, never expected
         raise GapbandError("internal error: an observed value changed while merging blocks")
     parts = [o.draws for _, o in filled if o.draws is not None]

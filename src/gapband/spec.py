@@ -28,6 +28,18 @@ from gapband.panel import step_of
 
 PRESETS = ("half-hourly", "hourly", "daily", "monthly")
 
+#: Where the scale priors stop, in standardised units (a series' sd is 1). The
+#: noise sd and each series' own sd are at least SCALE_FLOOR (a thousandth of
+#: the series' spread), the trend step sd at least STEP_FLOOR, and each own
+#: AR(1) coefficient at most OWN_RHO_MAX: below (above) them a precision of the
+#: sampler becomes numerically singular, and a density evaluated there grows
+#: without bound. The model (PyMC) and the Gibbs sampler share these bounds:
+#: they are part of the priors (HalfNormals truncated below, a Uniform on
+#: [0, OWN_RHO_MAX]).
+SCALE_FLOOR = 1e-3
+STEP_FLOOR = 1e-5
+OWN_RHO_MAX = 0.999
+
 
 @dataclass(frozen=True)
 class Key:
@@ -103,10 +115,9 @@ PRIOR_KEYS: dict[str, Key] = {
 FIXED_KEYS: dict[str, Key] = {
     "loading": Key((float,), None, "every loading of the shared factors", 0.0, None,
                    low_open=True),
-    "trend_innovation": Key((float,), None, "trend step sd", 0.0, None, low_open=True),
-    "own": Key((float,), None, "sd of each series' own AR(1) component", 0.0, None,
-               low_open=True),
-    "noise": Key((float,), None, "noise sd of every series", 0.0, None, low_open=True),
+    "trend_innovation": Key((float,), None, "trend step sd", STEP_FLOOR, None),
+    "own": Key((float,), None, "sd of each series' own AR(1) component", SCALE_FLOOR, None),
+    "noise": Key((float,), None, "noise sd of every series", SCALE_FLOOR, None),
 }
 
 

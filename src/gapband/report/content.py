@@ -52,9 +52,28 @@ def provenance(result: xr.Dataset, summary: dict) -> dict:
         "diagnostics": [(key, _text(value)) for key, value in diagnostics.items()
                         if key != "warnings"],
         "warnings": list(diagnostics.get("warnings", [])),
+        "verdict": verdict(diagnostics),
         "versions": list(summary.get("versions", {}).items()),
         "spec": json.dumps(json.loads(spec), indent=2) if spec else "",
     }
+
+
+def verdict(diagnostics: dict) -> tuple[bool, str]:
+    """Whether the fit converged, in one plain sentence for the top of the report."""
+    converged = bool(diagnostics.get("converged"))
+    r_hat = diagnostics.get("r_hat_max")
+    if r_hat is None:
+        return converged, ("The fit converged." if converged else
+                           "The fit's convergence could not be checked.")
+    figures = (f"largest R-hat {r_hat:.3f} (target ≤ 1.01), smallest ESS "
+               f"{min(diagnostics['ess_bulk_min'], diagnostics['ess_tail_min']):.0f} "
+               "(target ≥ 400)")
+    if converged:
+        return True, f"The sampler's chains agree: {figures}."
+    why = (" when its time budget ran out" if diagnostics.get("stopped_by") == "budget"
+           else "")
+    return False, (f"The sampler stopped{why} before its chains agreed: {figures}. Its fills "
+                   "are flagged filled_uncertain unless the run accepted unconverged fits.")
 
 
 def capture(summary: dict, threshold: float) -> list[dict]:
