@@ -381,3 +381,35 @@ def test_a_chain_that_always_fails_stops_the_fit_with_a_clear_message(monkeypatc
                        r"'s\d' .*trend step sd: .*check the series named, try another --seed"):
         inference.fit(panel, spec.parse(SIMPLE), method="gibbs", draws=10, tune=2, chains=2,
                       cores=1)
+
+
+def test_trend_scale_move_uses_the_kalman_filter_likelihood():
+    # Source: statsmodels UnobservedComponents (local level + AR(1) + irregular),
+    # whose Kalman filter log-likelihood with a known initial state and no
+    # burn-in is the exact marginal likelihood the joint trend-scale move
+    # accepts on; missing cells are skipped by both.
+    from statsmodels.tsa.statespace.structural import UnobservedComponents
+
+    rng = np.random.default_rng(5)
+    n_time, delta, phi, short, noise, level_sd = 120, 0.15, 0.6, 0.8, 0.4, 1.0
+    level = np.cumsum(np.r_[rng.normal(0, level_sd), rng.normal(0, delta, n_time - 1)])
+    ar = np.zeros(n_time)
+    ar[0] = rng.normal()
+    for t in range(1, n_time):
+        ar[t] = phi * ar[t - 1] + rng.normal(0, np.sqrt(1 - phi**2))
+    y = level + short * ar + rng.normal(0, noise, n_time)
+    y[[5, 6, 7, 40, 80, 81]] = np.nan
+    model = spec.parse({"rank": 1, "seasonal": [], "ar_factors": 1, "ar_order": 1,
+                        "own_ar": False, "fixed": {"loading": 1.0, "noise": noise},
+                        "priors": {"level": level_sd}})
+    sampler = gibbs._Sampler(y[None, :], np.zeros((n_time, 0)), model, 1, 1, rng)
+    state = sampler.initial()
+    state.short_loading[:], state.pacf[:] = short, phi
+    state.innovation[:], state.noise[:] = delta, noise
+    ours = sampler._shared_posterior(state, sampler._shared_data(state), state.innovation)[1]
+
+    reference = UnobservedComponents(y, level="llevel", autoregressive=1)
+    reference.ssm.initialize_known(np.zeros(2), np.diag([level_sd**2, short**2]))
+    reference.ssm.loglikelihood_burn = 0
+    expected = reference.loglike(np.array([noise**2, delta**2, short**2 * (1 - phi**2), phi]))
+    assert ours == pytest.approx(expected, rel=1e-6)
