@@ -479,11 +479,15 @@ def _thin(posterior: xr.Dataset, n_draws: int) -> xr.Dataset:
     """Keep ``n_draws`` posterior draws evenly spaced over all chains, as one chain."""
     from gapband.model import per_draw  # PyMC is imported only when a fit runs
 
-    stacked = posterior[per_draw(posterior)].stack(sample=("chain", "draw"))
-    total = stacked.sizes["sample"]
+    n_draw = posterior.sizes["draw"]
+    total = posterior.sizes["chain"] * n_draw
     keep = np.unique(np.linspace(0, total - 1, min(n_draws, total)).round().astype("int64"))
-    thinned = (stacked.isel(sample=keep).drop_vars(["sample", "chain", "draw"])
-               .rename(sample="draw").expand_dims(chain=1))
+    # Pointwise indexing rather than stacking chain and draw: stack cannot
+    # reshape a variable with a zero-length dim (own_gap with nothing missing).
+    chain, draw = (xr.DataArray(i, dims="sample") for i in np.divmod(keep, n_draw))
+    thinned = (posterior[per_draw(posterior)].isel(chain=chain, draw=draw)
+               .drop_vars(["chain", "draw"], errors="ignore").rename(sample="draw")
+               .expand_dims(chain=1))
     return thinned.transpose("chain", "draw", ...)
 
 

@@ -232,8 +232,10 @@ def draw_arrays(posterior: xr.Dataset, built: BuiltModel) -> dict[str, np.ndarra
     """
 
     def take(name: str) -> np.ndarray:
-        da = posterior[name]
-        return da.stack(sample=("chain", "draw")).transpose("sample", ...).values
+        # A plain reshape: xarray's stack cannot reshape a variable with a
+        # zero-length dim (own_gap of a panel with nothing missing).
+        values = posterior[name].transpose("chain", "draw", ...).values
+        return values.reshape(values.shape[0] * values.shape[1], *values.shape[2:])
 
     factor = take("trend")
     if built.fourier.sizes["harmonic"]:
