@@ -20,8 +20,7 @@ from rich.table import Table
 
 import gapband
 from gapband.chains import DEFAULT_CHAINS, TIME_BUDGET
-from gapband.errors import (FitError, GapbandError, InputError, Interrupted, SpecError,
-                            UsageError)
+from gapband.errors import FitError, GapbandError, InputError, Interrupted, SpecError, UsageError
 
 if TYPE_CHECKING:
     from gapband.filling import FillOptions

@@ -48,6 +48,7 @@ class Verdict:
                 f"ESS {min(self.ess_bulk_min, self.ess_tail_min):.0f} (≥ {ESS_MIN})")
 
     def as_dict(self) -> dict:
+        """The verdict's fields, JSON-ready."""
         return {"r_hat_max": self.r_hat_max, "ess_bulk_min": self.ess_bulk_min,
                 "ess_tail_min": self.ess_tail_min, "worst": self.worst,
                 "n_draws": self.n_draws, "converged": self.converged}

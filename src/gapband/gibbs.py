@@ -61,8 +61,13 @@ from gapband.chains import ChainFailure
 from gapband.convergence import PROBE_CELLS, Verdict, assess, chain_widths
 from gapband.convergence import probes as convergence_probes
 from gapband.errors import FitError
-from gapband.gmrf import (BorderedGaussian, StackedAr1, ar1_entries, ar1_log_det,
-                          gaussian_log_evidence)
+from gapband.gmrf import (
+    BorderedGaussian,
+    StackedAr1,
+    ar1_entries,
+    ar1_log_det,
+    gaussian_log_evidence,
+)
 from gapband.spec import OWN_RHO_MAX, SCALE_FLOOR, STEP_FLOOR, ModelSpec
 
 #: Floors that keep variances and sums of squares strictly positive.
@@ -130,12 +135,13 @@ class _Sampler:
 
     # -- initial point ---------------------------------------------------------
     def initial(self) -> _State:
-        """An over-dispersed start: the SVD of the mean-imputed panel, loadings jittered by
-        30 %, and every scale and coefficient drawn across its plausible range.
+        """An over-dispersed start for one chain.
 
-        Chains that start apart and still agree are evidence of convergence;
-        chains started alike can agree without it (Gelman & Rubin,
-        Statistical Science 7, 1992).
+        The SVD of the mean-imputed panel, loadings jittered by 30 %, and
+        every scale and coefficient drawn across its plausible range.
+        Chains that start apart and still agree are evidence of
+        convergence; chains started alike can agree without it (Gelman &
+        Rubin, Statistical Science 7, 1992).
         """
         spec, rng = self.spec, self.rng
         n_series, n_time = self.z.shape
@@ -416,8 +422,11 @@ class _Sampler:
 
     def _shared_posterior(self, s: _State, data: dict, innovation: np.ndarray,
                           ) -> tuple[BorderedGaussian, float]:
-        """The shared state's conditional at trend step sds ``innovation``, and the
-        log marginal likelihood of the data with the state integrated out."""
+        """The shared state's conditional at trend step sds ``innovation``, and evidence.
+
+        The evidence is the log marginal likelihood of the data with the
+        shared state integrated out (:func:`gaussian_log_evidence`).
+        """
         ab, _, prior_log_det = self._shared_prior(s, innovation)
         posterior = BorderedGaussian.of(ab + data["ab"], data["rhs"], data["border"],
                                         data["corner"], data["corner_rhs"])
@@ -906,7 +915,7 @@ class _Run:
         return np.array(rows).reshape(len(rows), width)
 
     def probe(self) -> np.ndarray:
-        """This sweep's probes: cell means and draws, noise sds, own innovation sds."""
+        """Probes of the current sweep: cell means and draws, noise and own innovation sds."""
         s, n, t = self.state, self.probe_series, self.probe_times
         mean = self.sampler.mean_at(s, n, t)
         shock = (self.rng.standard_t(self.job.spec.noise_df, n.size)
