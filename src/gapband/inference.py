@@ -69,7 +69,8 @@ class Fit:
     posterior : Dataset
         Posterior draws, dims ``chain``, ``draw`` and the model's dims.
     diagnostics : dict
-        JSON-ready: r_hat_max, ess_bulk_min, divergences, n_draws, converged,
+        JSON-ready: r_hat_max, ess_bulk_min, ess_tail_min, worst, chain_width_ratio,
+        divergences, n_draws, converged,
         warnings (list of str), elbo (ADVI only), acceptance (Gibbs only).
     timings : dict of str to float
         Seconds: build, compile (NUTS with nutpie), tune (Gibbs burn-in),
