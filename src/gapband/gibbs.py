@@ -264,8 +264,7 @@ class _Sampler:
         self.proposed["rescale"] += accept.size
         if tuning:
             self.scale_tuned += 1
-            gain = 1.0 / (1.0 + self.scale_tuned) ** 0.6
-            self.scale_step *= np.exp(gain * (accept.mean() - 0.3))
+            self.scale_step = _robbins_monro(self.scale_step, self.scale_tuned, accept.mean())
 
     def finite(self, s: _State) -> bool:
         """Whether every scale and path of the state is a finite number."""
@@ -340,9 +339,7 @@ class _Sampler:
         innovation = s.innovation if innovation is None else innovation
         r, rb, p = self.rank, self.ar_factors, self.order
         n_time = self.z.shape[1]
-        d = r + rb
-        lags = max(1, p if rb else 1)
-        ab = np.zeros((d * (lags + 1), n_time * d))
+        ab, d = self._empty_band()
         times = np.arange(n_time) * d
         level_precision = 1.0 / self.spec.priors.level**2
         log_det = r * np.log(level_precision) - 2.0 * (n_time - 1) * np.log(innovation).sum()
@@ -381,6 +378,12 @@ class _Sampler:
             posterior = self._shared_posterior(s, data, s.innovation)[0]
         self._store_shared(s, *posterior.draw(self.rng))
 
+    def _empty_band(self) -> tuple[np.ndarray, int]:
+        """A zero lower banded matrix shaped like the shared state's precision; state size d."""
+        d = self.rank + self.ar_factors
+        lags = max(1, self.order if self.ar_factors else 1)
+        return np.zeros((d * (lags + 1), self.z.shape[1] * d)), d
+
     def _shared_data(self, s: _State) -> dict:
         """What the observations add to the shared state's precision, given the own paths.
 
@@ -389,8 +392,7 @@ class _Sampler:
         canonical mean; plus yᵀWy, log|W| and the observed count for the
         marginal likelihood.
         """
-        ab, d, _ = self._shared_prior(s)
-        ab[:] = 0.0
+        ab, d = self._empty_band()
         n_time = self.z.shape[1]
         times = np.arange(n_time) * d
         shared = np.concatenate([s.loading, s.short_loading], axis=1)  # (N, d)
@@ -468,8 +470,7 @@ class _Sampler:
             s.innovation = proposal
         if self.tuning:
             self.trend_tuned += 1
-            gain = 1.0 / (1.0 + self.trend_tuned) ** 0.6
-            self.trend_step *= np.exp(gain * (float(accept) - 0.3))
+            self.trend_step = _robbins_monro(self.trend_step, self.trend_tuned, float(accept))
         return proposed if accept else current
 
     def _shared_given_signal(self, s: _State) -> None:
@@ -656,8 +657,7 @@ class _Sampler:
         Metropolis; Haario, Saksman & Tamminen, Bernoulli 2001).
         """
         self.own_tuned += 1
-        gain = 1.0 / (1.0 + self.own_tuned) ** 0.6
-        self.own_step *= np.exp(gain * (accept - 0.3))
+        self.own_step = _robbins_monro(self.own_step, self.own_tuned, accept)
         self.own_history.append(current)
         if self.own_tuned >= 150 and self.own_tuned % 50 == 0:
             history = np.stack(self.own_history[len(self.own_history) // 3 :], axis=1)
@@ -1128,6 +1128,12 @@ def _own_marginal(resid: np.ndarray, base: np.ndarray, sd: np.ndarray, rho: np.n
     # A row that cannot be evaluated has no density there: a proposal to it is rejected.
     logp = np.where(failed | ~np.isfinite(logp), -np.inf, logp)
     return logp, factor, regression
+
+
+def _robbins_monro(step, tuned: int, acceptance):
+    """A Metropolis step size moved toward 30 % acceptance (Robbins-Monro, gain 1/n^0.6)."""
+    gain = 1.0 / (1.0 + tuned) ** 0.6
+    return step * np.exp(gain * (acceptance - 0.3))
 
 
 def _cholesky_rows(matrices: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
