@@ -5,7 +5,7 @@ either a fill or a clear error (exit 2 or 3) — never exit 1, the internal
 error. Each run writes one gapped Panel as a wide CSV and fills it in its
 own subprocess through the command line::
 
-    gapband fill INPUT.csv --out DIR --seed S --quiet [--draws N --tune N]
+    gapband fill INPUT.csv --out DIR --seed S --quiet [--draws N --tune N] [--budget S]
 
 Printed: one table (panel, pattern, seed, exit code, seconds, outcome, the
 first error line or the fill's flag counts), then the totals — runs,
@@ -128,7 +128,8 @@ def main() -> None:
     command = ([str(Path(sys.executable).with_name("gapband"))] if args.plain
                else [sys.executable, "-c", TRACED_CLI])
     extra = [*(["--draws", str(args.draws)] if args.draws else []),
-             *(["--tune", str(args.tune)] if args.tune is not None else [])]
+             *(["--tune", str(args.tune)] if args.tune is not None else []),
+             *(["--budget", f"{args.budget:g}"] if args.budget is not None else [])]
     print(f"{len(runs)} fills ({len(panels)} panels × {len(patterns)} patterns × "
           f"{len(seeds)} seeds), {args.jobs} at a time; options beyond the defaults: "
           f"{' '.join(extra) or 'none'}; folder {out}", flush=True)
@@ -176,6 +177,8 @@ def parse_args() -> argparse.Namespace:
     parser.add_argument("--jobs", type=int, default=1, help="fills run at once (default 1)")
     parser.add_argument("--draws", type=int, help="passed to gapband fill (default: not passed)")
     parser.add_argument("--tune", type=int, help="passed to gapband fill (default: not passed)")
+    parser.add_argument("--budget", type=float,
+                        help="seconds of sampling passed to gapband fill (default: not passed)")
     parser.add_argument("--out", help="folder for the inputs, outputs and results.json "
                         "(default: a new temporary folder)")
     parser.add_argument("--timeout", type=float, default=900,
