@@ -199,6 +199,16 @@ def test_cli_bad_levels_exit_2(station_csv, tmp_path):
     assert "strictly between 0 and 100" in result.output
 
 
+def test_cli_bad_decimals_exit_2(station_csv, tmp_path):
+    path, _ = station_csv
+    result = CliRunner().invoke(
+        cli, ["fill", str(path), "--out", str(tmp_path / "o"), "--decimals", "two"]
+    )
+    assert result.exit_code == 2
+    assert "use 'input', 'full' or a whole number from 0 to 10, not 'two'" in result.output
+    assert not (tmp_path / "o").exists()
+
+
 def test_cli_refuses_to_overwrite(filled_dir, station_csv):
     path, _ = station_csv
     before = (filled_dir / "summary.json").read_bytes()

@@ -15,9 +15,9 @@ from gapband.panel import make_panel
 DIMS = ("series", "time")
 LEVELS = ("97.5", "50", "90", "80")  # deliberately out of order
 TABLE_COLUMNS = [
-    "time", "series", "observed", "filled", "sd",
+    "time", "series", "units", "observed", "filled", "sd",
     "lower_50", "upper_50", "lower_80", "upper_80",
-    "lower_90", "upper_90", "lower_97.5", "upper_97.5", "flag",
+    "lower_90", "upper_90", "lower_97.5", "upper_97.5", "flag", "flag_code",
 ]
 
 
@@ -136,10 +136,73 @@ def test_csv_time_is_iso_8601_and_empty_cells_are_blank(result, tmp_path):
     path = outputs.write_table(result, tmp_path / "filled.csv")
     lines = path.read_text(encoding="utf-8").splitlines()
     assert lines[0] == ",".join(TABLE_COLUMNS)
-    assert lines[1].startswith("2024-03-30T22:00:00,north,-0.0,-0.0,,,")
-    assert lines[1].endswith(",observed")
+    assert lines[1].startswith("2024-03-30T22:00:00,north,µg m-3,-0.0,-0.0,,,")
+    assert lines[1].endswith(",observed,0")
     back = pd.read_csv(path, dtype={"time": str})
     assert back["time"].iloc[2] == "2024-03-31T00:00:00"
+
+
+def test_flag_code_is_the_netcdf_flag_value_of_the_text(result, tmp_path):
+    back = pd.read_csv(outputs.write_table(result, tmp_path / "filled.csv"))
+    # Source: CF Conventions 1.10, section 3.5 Flags: flag_meanings[i] names flag_values[i].
+    meanings = result["fill_flag"].attrs["flag_meanings"].split()
+    values = list(result["fill_flag"].attrs["flag_values"])
+    assert [meanings[values.index(code)] for code in back["flag_code"]] == list(back["flag"])
+
+
+def _one_decimal(tmp_path):
+    """A result whose observed values were read from one-decimal text."""
+    text = ["32.8", "45.3", "", "", "0.1", "-7.0", "12.4", "", "3.3", "8.0", "1.1", "2.5",
+            "40.0", "7.7", "9.9", ""]
+    values = np.array([[float(v) if v else np.nan for v in text]])
+    time = pd.date_range("2025-01-01", periods=values.shape[1], freq="h")
+    panel = make_panel(values, ["quill"], time, "h")
+    missing = np.isnan(values)
+    noisy = np.where(missing, 20.367257901297474, np.nan)
+    panel["fill_median"] = (DIMS, noisy)
+    panel["fill_mean"] = (DIMS, noisy)
+    panel["fill_sd"] = (DIMS, np.where(missing, 1.23456, np.nan))
+    panel["lower_90"] = (DIMS, noisy - 2.0449)
+    panel["upper_90"] = (DIMS, noisy + 2.0551)
+    return flags.assign(panel), text
+
+
+def test_csv_rounds_fills_to_the_input_resolution_and_keeps_observed_text(tmp_path):
+    result, text = _one_decimal(tmp_path)
+    path = outputs.write_table(result, tmp_path / "filled.csv")
+    back = pd.read_csv(path, dtype=str, keep_default_na=False)
+    observed = [v for v in text if v]
+    # Observed cells: the input's own text (its shortest form) in both columns.
+    kept = back["observed"] != ""
+    assert list(back.loc[kept, "observed"]) == [str(float(v)) for v in observed]
+    assert list(back.loc[kept, "filled"]) == list(back.loc[kept, "observed"])
+    filled = back.loc[~kept & (back["flag"] != "not_filled")]
+    assert set(filled["filled"]) == {"20.4"}
+    assert set(filled["sd"]) == {"1.23"} and set(filled["lower_90"]) == {"18.3"}
+    assert set(filled["upper_90"]) == {"22.4"}
+
+
+@pytest.mark.parametrize(("decimals", "expected"), [("full", "20.367257901297474"), (3, "20.367")])
+def test_csv_decimals_can_be_chosen(tmp_path, decimals, expected):
+    result, _ = _one_decimal(tmp_path)
+    path = outputs.write_table(result, tmp_path / "filled.csv", decimals=decimals)
+    back = pd.read_csv(path, dtype=str, keep_default_na=False)
+    assert expected in set(back["filled"])
+    with pytest.raises(UsageError, match="decimals must be 'input', 'full' or a whole number"):
+        outputs.write_table(result, tmp_path / "x.csv", decimals=-1)
+
+
+def test_input_decimals_reads_the_resolution_of_each_series():
+    values = np.array([[32.8, 45.25, np.nan], [1200.0, 5.0, -3.0], [0.1 + 0.2, 0.5, 1.0],
+                       [np.pi, 1.0, 2.0], [np.nan, np.nan, np.nan], [1.5e-6, 2e-6, 0.0]])
+    assert list(outputs.input_decimals(values)) == [2, 0, 1, -1, -1, 7]
+
+
+def test_csv_times_carry_z_when_the_input_was_zoned(result, tmp_path):
+    result.attrs["timezone"] = "UTC"
+    back = pd.read_csv(outputs.write_table(result, tmp_path / "filled.csv"), dtype={"time": str})
+    assert back["time"].iloc[0] == "2024-03-30T22:00:00Z"
+    assert pd.Timestamp(back["time"].iloc[0]) == pd.Timestamp("2024-03-30 22:00", tz="UTC")
 
 
 def test_parquet_keeps_time_as_timestamps(result, tmp_path):

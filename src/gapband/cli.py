@@ -254,6 +254,10 @@ def plan_and_runner(panel, model, given: dict) -> tuple:
               "(by default they are flagged filled_uncertain).")
 @click.option("--table", type=click.Choice(["csv", "parquet"]), default="csv",
               show_default=True, help="Format of the long table.")
+@click.option("--decimals", default="input", show_default=True, callback=lambda ctx, param,
+              text: parse_decimals(text), metavar="input|full|N",
+              help="Decimals of the fills in the long table: as the input's observed values, "
+              "full precision, or N (filled.nc keeps full precision).")
 @click.option("--keep-draws", type=click.IntRange(0), default=200, show_default=True,
               metavar="N", help="Joint predictive draws of the filled cells kept in filled.nc "
               "for gapband stats (0: none).")
@@ -261,7 +265,7 @@ def plan_and_runner(panel, model, given: dict) -> tuple:
 @click.option("--overwrite", is_flag=True, help="Replace existing outputs in --out.")
 @handle_errors
 def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width, max_gap,
-         accept_unconverged, table, keep_draws, overwrite, **kw):
+         accept_unconverged, table, decimals, keep_draws, overwrite, **kw):
     """Fill every missing cell of INPUT with a credible interval and a flag."""
     from gapband import filling
     from gapband.outputs import prepare_dir
@@ -282,7 +286,8 @@ def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width,
         plan, runner = plan_and_runner(panel, model, blocks)
         result, summary = fill_blocks(panel, plan, model=model, transform=transform,
                                       options=options, calibration=calibration, runner=runner)
-    written = filling.write_fill(result, summary, out_dir, table=table, overwrite=True)
+    written = filling.write_fill(result, summary, out_dir, table=table, decimals=decimals,
+                                 overwrite=True)
     for warning in summary["diagnostics"].get("warnings", []):
         errors.print(f"[bold yellow]warning:[/] {escape(warning)}", highlight=False)
     if summary["calibration"] is not None:
@@ -295,6 +300,18 @@ def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width,
     )
     for path in written:
         console.print(f"wrote {path}", highlight=False)
+
+
+def parse_decimals(text: str) -> int | str:
+    """``--decimals``: 'input', 'full' or a whole number of decimals."""
+    from gapband.outputs import MAX_DECIMALS
+
+    if text in ("input", "full"):
+        return text
+    if text.isdigit() and int(text) <= MAX_DECIMALS:
+        return int(text)
+    raise click.BadParameter(f"use 'input', 'full' or a whole number from 0 to {MAX_DECIMALS}, "
+                             f"not {text!r}")
 
 
 def parse_baselines(ctx, param, text: str) -> tuple[str, ...]:

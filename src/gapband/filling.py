@@ -541,9 +541,13 @@ def write_fill(
     out_dir: str | Path,
     *,
     table: Literal["csv", "parquet"] = "csv",
+    decimals: int | str = "input",
     overwrite: bool = False,
 ) -> list[Path]:
     """Write ``filled.nc``, ``filled.<table>`` and ``summary.json`` into ``out_dir``.
+
+    ``decimals`` rounds the table's fills (:func:`gapband.outputs.long_table`);
+    filled.nc keeps full precision.
 
     The three are written under temporary names and renamed together at the
     end (:func:`gapband.outputs.atomic_paths`): an interrupted run leaves the
@@ -554,7 +558,7 @@ def write_fill(
     targets = [out / name for name in names]
     with outputs.atomic_paths(targets) as (netcdf, long_table, json_file):
         outputs.write_netcdf(result, netcdf)
-        outputs.write_table(result, long_table)
+        outputs.write_table(result, long_table, decimals)
         outputs.write_json(summary, json_file)
     return targets
 

@@ -41,6 +41,9 @@ _LONG_NAMES = {
 }
 _TABLE_SUFFIXES = (".csv", ".parquet")
 
+#: Most decimals the long table rounds fills to (see :func:`input_decimals`).
+MAX_DECIMALS = 10
+
 
 @contextmanager
 def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
@@ -194,12 +197,19 @@ def open_fill(folder: str | os.PathLike) -> tuple[xr.Dataset, dict]:
     return result, summary
 
 
-def long_table(result: xr.Dataset) -> pd.DataFrame:
+def long_table(result: xr.Dataset, decimals: int | str = "input") -> pd.DataFrame:
     """Return the result as a long table, one row per cell, series by series.
 
-    Columns: ``time, series, observed, filled, sd, lower_<L>, upper_<L>`` (per
-    level, increasing) and ``flag`` (the flag meaning as text). ``sd`` and the
-    bounds are empty for observed and not-filled cells.
+    Columns: ``time, series, units, observed, filled, sd, lower_<L>, upper_<L>``
+    (per level, increasing), ``flag`` (the flag meaning as text) and
+    ``flag_code`` (its number, as in filled.nc). ``sd`` and the bounds are
+    empty for observed and not-filled cells; ``units`` is empty when the
+    input did not state them.
+
+    ``decimals``: ``"input"`` rounds each series' fills and bounds to the
+    resolution of its observed values (:func:`input_decimals`; the sd gets
+    one decimal more), an integer rounds every series to that many decimals,
+    ``"full"`` keeps full precision. Observed values are never rounded.
     """
     absent = [n for n in ("value", "filled", "fill_sd", "fill_flag") if n not in result]
     if absent:
@@ -208,36 +218,87 @@ def long_table(result: xr.Dataset) -> pd.DataFrame:
         )
     ds = result.transpose("series", "time", ...)
     n_series, n_time = ds.sizes["series"], ds.sizes["time"]
-    missing = ds["value"].isnull().values
+    values = ds["value"].values
+    missing = np.isnan(values)
+    places = _places(values, decimals)
 
-    def fill_only(name: str) -> np.ndarray:
-        return np.where(missing, ds[name].values, np.nan).ravel()
+    def fill_only(name: str, extra: int = 0) -> np.ndarray:
+        return _rounded(np.where(missing, ds[name].values, np.nan), places, extra).ravel()
 
+    codes = ds["fill_flag"].values.ravel()
     columns: dict[str, np.ndarray] = {
         "time": np.tile(ds["time"].values, n_series),
         "series": np.repeat(ds["series"].values.astype(str), n_time),
-        "observed": ds["value"].values.ravel(),
-        "filled": ds["filled"].values.ravel(),
-        "sd": fill_only("fill_sd"),
+        "units": np.full(n_series * n_time, ds["value"].attrs.get("units") or ""),
+        "observed": values.ravel(),
+        "filled": np.where(missing, _rounded(ds["filled"].values, places), values).ravel(),
+        "sd": fill_only("fill_sd", extra=1),
     }
     for level in interval_levels(ds):
         columns[f"lower_{level}"] = fill_only(f"lower_{level}")
         columns[f"upper_{level}"] = fill_only(f"upper_{level}")
-    columns["flag"] = np.asarray(FLAG_MEANINGS)[ds["fill_flag"].values.ravel()]
+    columns["flag"] = np.asarray(FLAG_MEANINGS)[codes]
+    columns["flag_code"] = codes
     return pd.DataFrame(columns)
 
 
-def write_table(result: xr.Dataset, path: str | os.PathLike) -> Path:
+def input_decimals(values: np.ndarray) -> np.ndarray:
+    """Per series (rows of ``values``), the decimals its observed values are given to.
+
+    The fewest decimals d (0 to :data:`MAX_DECIMALS`) at which every observed
+    value times 10^d is a whole number to within 1e-6: 1 for values read from
+    "32.8", 0 for "1200". -1 where no d fits (values beyond the resolution of
+    a few decimals, or none observed): such a series is not rounded.
+    """
+    found = np.full(values.shape[0], -1)
+    for n, row in enumerate(values):
+        seen = row[~np.isnan(row)]
+        if not seen.size or np.abs(seen).max() >= 1e9:
+            continue
+        for d in range(MAX_DECIMALS + 1):
+            scaled = seen * 10.0**d
+            if np.abs(scaled - np.rint(scaled)).max() <= 1e-6:
+                found[n] = d
+                break
+    return found
+
+
+def _places(values: np.ndarray, decimals: int | str) -> np.ndarray:
+    """Decimals per series for :func:`long_table`'s ``decimals`` (-1: not rounded)."""
+    if decimals == "input":
+        return input_decimals(values)
+    if decimals == "full":
+        return np.full(values.shape[0], -1)
+    if isinstance(decimals, int | np.integer) and not isinstance(decimals, bool) \
+            and 0 <= decimals <= MAX_DECIMALS:
+        return np.full(values.shape[0], int(decimals))
+    raise UsageError(f"decimals must be 'input', 'full' or a whole number from 0 to "
+                     f"{MAX_DECIMALS}, not {decimals!r}")
+
+
+def _rounded(values: np.ndarray, places: np.ndarray, extra: int = 0) -> np.ndarray:
+    """Each row of ``values`` rounded to its series' decimals plus ``extra`` (-1: as is)."""
+    out = values.copy()
+    for n, d in enumerate(places):
+        if d >= 0:
+            out[n] = np.round(values[n], d + extra)
+    return out
+
+
+def write_table(result: xr.Dataset, path: str | os.PathLike,
+                decimals: int | str = "input") -> Path:
     """Write :func:`long_table` as CSV or Parquet, chosen by the file suffix.
 
-    CSV holds time as ISO-8601 text and floats in their shortest exact form
-    (``repr``), which pandas' default parser reads back bit for bit; empty
-    fields are missing. Parquet keeps time as a timestamp.
+    CSV holds time as ISO-8601 text (with ``Z`` when the input's times were
+    zoned and so converted to UTC) and floats in their shortest form
+    (``repr``): an observed value reads back bit for bit, a rounded fill as
+    its decimals. Empty fields are missing. Parquet keeps time as a
+    timestamp. ``decimals`` as in :func:`long_table`.
 
     Raises
     ------
     UsageError
-        The suffix is neither ``.csv`` nor ``.parquet``.
+        The suffix is neither ``.csv`` nor ``.parquet``, or ``decimals`` is invalid.
     """
     target = Path(path)
     suffix = target.suffix.lower()
@@ -245,10 +306,11 @@ def write_table(result: xr.Dataset, path: str | os.PathLike) -> Path:
         raise UsageError(
             f"table file {str(target)!r} must end in {' or '.join(_TABLE_SUFFIXES)}"
         )
-    table = long_table(result)
+    table = long_table(result, decimals)
     with atomic_path(target) as tmp:
         if suffix == ".csv":
-            table["time"] = _iso(table["time"].to_numpy())
+            zone = "Z" if result.attrs.get("timezone") == "UTC" else ""
+            table["time"] = np.char.add(_iso(table["time"].to_numpy()).astype(str), zone)
             # float_format stays None: pandas then writes repr(), the shortest
             # text that reads back to the same double.
             table.to_csv(tmp, index=False, na_rep="", lineterminator="\n")
