@@ -26,9 +26,9 @@ HOSTILE = "<script>alert(1)</script>"
 UNITS = "<i>units</i> & more"
 FAST = ["--draws", "60", "--tune", "60", "--seed", "3", "--quiet"]
 SMALL = 'base = "daily"\nrank = 1\nar_factors = 0\n\n[[seasonal]]\nperiod = "7D"\nharmonics = 1\n'
-HEADINGS = ("Run provenance", "Data capture", "Gap map", "Substitution log",
+HEADINGS = ("Summary", "Data capture", "Gap map", "Substitution log",
             "What the fills are made of", "Filled spans", "Flag counts", "Period statistics",
-            "Holdout evidence", "Cautions")
+            "Holdout evidence", "Cautions", "Appendix: how the fill was made")
 
 
 @pytest.fixture(scope="module")
@@ -62,6 +62,36 @@ def test_every_section_is_present(report_html):
     for text in ("reliability diagram", "PIT histogram", "CRPS", "Coverage by gap length",
                  "kalman", "linear", "not measurements", "local regulator"):
         assert text in report_html, text
+
+
+def test_results_come_first_in_plain_words(report_html):
+    sections = re.findall(r'<section id="([^"]+)">', report_html)
+    assert sections[0] == "summary" and sections[-1] == "provenance"
+    summary = report_html[report_html.index('<section id="summary">'):
+                          report_html.index('<section id="capture">')]
+    assert "Filled record: air&amp;quality.csv" in report_html
+    # The three verdicts: convergence, the holdout's coverage, and the cells not to use.
+    assert re.search(r"(chains agree|chains agreed)", summary)
+    assert re.search(r"90 % intervals held \d+\.\d % of \d+ hidden values \(target 90 %\)",
+                     summary)
+    assert re.search(r"\d+ missing values were filled; \d+ of them are flagged", summary)
+    assert "not measurements" in summary and "local regulator" in summary
+
+
+def test_no_raw_json_in_the_page(report_html):
+    text = re.sub(r'src="data:[^"]*"', "", report_html)
+    assert not re.search(r'[{\[]\s*&#34;|[{\[]\s*"\w+"\s*:', text)
+    assert "<pre>" not in text
+    # Figures are rounded: no float printed with more than 4 significant digits after a point.
+    assert not re.search(r">[^<]*\d\.\d{6,}", text)
+
+
+def test_title_can_be_given(fill_dir, tmp_path):
+    out = tmp_path / "titled.html"
+    run = CliRunner().invoke(cli, ["report", str(fill_dir), "--out", str(out),
+                                   "--title", "Tolmere <Basin> network"])
+    assert run.exit_code == 0, run.output
+    assert "<h1>Filled record: Tolmere &lt;Basin&gt; network</h1>" in out.read_text("utf-8")
 
 
 def test_no_resource_is_fetched_from_anywhere(report_html):

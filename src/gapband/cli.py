@@ -489,14 +489,16 @@ def _finite(value: float) -> float | None:
               help="Period of the statistics section (default: by record length).")
 @click.option("--capture-threshold", type=click.FloatRange(0, 100), default=90.0,
               show_default=True, metavar="PCT", help="Data capture a series should reach.")
+@click.option("--title", help="The network's or dataset's name (default: the input's NetCDF "
+              "title attribute, else its file name).")
 @click.option("--overwrite", is_flag=True, help="Replace an existing report.")
 @handle_errors
-def report(fill_dir, out_path, holdout_path, period, capture_threshold, overwrite):
+def report(fill_dir, out_path, holdout_path, period, capture_threshold, title, overwrite):
     """Write a self-contained HTML report of the fill in DIR."""
     from gapband.report import write
 
     path = write(fill_dir, out_path, overwrite=overwrite, holdout=holdout_path, period=period,
-                 capture_threshold=capture_threshold)
+                 capture_threshold=capture_threshold, title=title)
     console.print(f"wrote {path}", highlight=False)
 
 

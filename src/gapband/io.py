@@ -471,6 +471,8 @@ def _netcdf_table(
         times = pd.DatetimeIndex(da[time_dim].values)
         values = da.values.astype("float64")
         attrs = {k: v for k, v in da.attrs.items() if k in ("long_name", "standard_name")}
+        if isinstance(ds.attrs.get("title"), str):
+            attrs["title"] = ds.attrs["title"]  # the dataset's name (CF global attribute)
     n_series, n_time = values.shape
     where = np.array(
         [f"{series_dim} {s}, {time_dim} index {t}" for s in range(n_series) for t in range(n_time)],

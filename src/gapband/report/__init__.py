@@ -33,6 +33,7 @@ def render(
     holdout: str | Path | None = None,
     period: str | None = None,
     capture_threshold: float = 90.0,
+    title: str | None = None,
 ) -> str:
     """The report of the fill in ``folder`` as one HTML document.
 
@@ -47,6 +48,9 @@ def render(
         or more: year; two months or more: month; else day).
     capture_threshold : float
         Data capture (%) a series should reach, shown against the figures.
+    title : str, optional
+        The network's or dataset's name; default the input's NetCDF ``title``
+        attribute, else the input file's name.
 
     Raises
     ------
@@ -58,8 +62,10 @@ def render(
     holdout_report = _read_holdout(Path(folder), holdout)
     units = str(result["value"].attrs.get("units", ""))
     method = summary.get("method", "")
+    name = title or result.attrs.get("title") or summary.get("source") or Path(folder).name
     page = {
-        "title": f"gapband report: {summary.get('source') or Path(folder).name}",
+        "title": f"Filled record: {name}",
+        "summary": content.summary_section(result, summary, holdout_report, units),
         "provenance": content.provenance(result, summary),
         "threshold": capture_threshold,
         "capture": content.capture(summary, capture_threshold),
@@ -75,6 +81,7 @@ def render(
                     if holdout_report else None),
         "units": units,
         "method": method,
+        "method_words": content.method_words(summary),
         "approximate": bool(summary.get("approximate")),
         "version": summary.get("versions", {}).get("gapband", ""),
         "made": pd.Timestamp.now("UTC").strftime("%Y-%m-%d %H:%M UTC"),

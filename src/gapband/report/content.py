@@ -25,11 +25,97 @@ _MONTHLY_FROM = pd.Timedelta(days=56)
 _YEARLY_FROM = pd.Timedelta(days=730)
 
 
+def summary_section(result: xr.Dataset, summary: dict, holdout_report: dict | None,
+                    units: str) -> dict:
+    """The report's first section: what was filled, per station, and three verdicts."""
+    times = result["time"].values
+    counts = summary["flags"]["series"]
+    stations = []
+    for name, c in counts.items():
+        total = sum(c.values())
+        stations.append({"series": name, "steps": total, "measured": c["observed"],
+                         "measured_pct": 100.0 * c["observed"] / total if total else 0.0,
+                         "filled": c["filled"], "uncertain": c["filled_uncertain"],
+                         "not_filled": c["not_filled"]})
+    return {
+        "quantity": str(result.attrs.get("long_name") or result.attrs.get("standard_name")
+                        or result.attrs.get("variable") or "Values"),
+        "units": units or "not stated",
+        "period": f"{_day(times[0])} to {_day(times[-1])}",
+        "step": _step_words(str(result.attrs.get("step", ""))),
+        "stations": stations,
+        "verdicts": [verdict(summary.get("diagnostics", {})),
+                     evidence_verdict(holdout_report, summary),
+                     use_verdict(summary)],
+    }
+
+
+def evidence_verdict(report: dict | None, summary: dict) -> tuple[bool | None, str]:
+    """Whether the intervals were tested on held-out values, and how they did, in words."""
+    if report is None:
+        return None, ("The intervals were not tested on held-out values for this report: "
+                      "run gapband holdout on the same input to test them.")
+    gapband = report["scores"].get("gapband", {}).get("overall", {})
+    coverage = gapband.get("coverage") or {}
+    level = "90" if "90" in coverage else (max(coverage, key=float) if coverage else None)
+    if level is None:
+        return None, "The holdout file holds no coverage figures for gapband's intervals."
+    held = 100.0 * coverage[level]
+    target = float(level)
+    widened = summary.get("calibration") is not None
+    after = (report.get("widening") or {}).get("coverage_after", {}).get(level)
+    text = (f"Before widening, {level} % intervals held {held:.1f} % of {gapband.get('n', 0)} "
+            f"hidden values (target {target:g} %).")
+    if widened and after is not None:
+        text += (f" This fill's intervals were widened by that holdout's factors; widened, "
+                 f"they held {100.0 * after:.1f} %.")
+    elif not widened:
+        text += " This fill's intervals were not widened by it (gapband fill --calibration)."
+    return abs((after if widened and after is not None else coverage[level]) * 100
+               - target) <= 5.0, text
+
+
+def use_verdict(summary: dict) -> tuple[bool, str]:
+    """Which cells should not be used as they are, in one sentence."""
+    overall = summary["flags"]["overall"]
+    filled = overall["filled"] + overall["filled_uncertain"]
+    uncertain, missing = overall["filled_uncertain"], overall["not_filled"]
+    text = (f"{filled} missing values were filled; {uncertain} of them are flagged "
+            "filled_uncertain and should not be used without their intervals")
+    reasons = rule_rows(summary.get("flag_rules") or {})
+    if reasons:
+        text += " (rules: " + "; ".join(f"{label} {value}" for label, value in reasons) + ")"
+    text += "."
+    if missing:
+        text += f" {missing} could not be filled (too few observations of their series)."
+    return uncertain == 0 and missing == 0, text
+
+
+def rule_rows(rules: dict) -> list[tuple[str, str]]:
+    """The flag rules in words, one (label, value) row per rule in force."""
+    rows = []
+    level = rules.get("level")
+    if rules.get("max_width") is not None:
+        rows.append((f"{level:g} % interval wider than", f"{rules['max_width']:g}"))
+    if rules.get("max_rel_width") is not None:
+        rows.append((f"{level:g} % interval wider than",
+                     f"{rules['max_rel_width']:g} × the series' 5–95 % range"))
+    if rules.get("max_gap"):
+        rows.append(("gap longer than", str(rules["max_gap"])))
+    if rules.get("min_observed") is not None:
+        rows.append(("not filled below", f"{rules['min_observed']} observations of a series"))
+    if "accept_unconverged" in rules:
+        rows.append(("fit not converged", "kept as filled" if rules["accept_unconverged"]
+                     else "flagged uncertain"))
+    return rows
+
+
 def provenance(result: xr.Dataset, summary: dict) -> dict:
-    """How the fill was made: input, settings, spec, diagnostics, versions."""
+    """How the fill was made, for the appendix: input, settings, spec, diagnostics, versions."""
     attrs = result.attrs
     diagnostics = summary.get("diagnostics", {})
     spec = attrs.get("gapband_spec")
+    calibration = summary.get("calibration")
     return {
         "rows": [
             ("input file", summary.get("source")),
@@ -37,25 +123,35 @@ def provenance(result: xr.Dataset, summary: dict) -> dict:
             ("grid step", attrs.get("step")),
             ("record", f"{_day(result['time'].values[0])} to {_day(result['time'].values[-1])}"),
             ("series × time steps", f"{result.sizes['series']} × {result.sizes['time']}"),
-            ("inference method", summary.get("method")
-             + (" (approximate)" if summary.get("approximate") else "")),
+            ("method", method_words(summary)),
             ("model spec", summary.get("spec")),
             ("seed", summary.get("seed")),
             ("interval levels (%)", ", ".join(f"{v:g}" for v in summary.get("levels", []))),
-            ("flag rules", attrs.get("gapband_flag_rules") or json.dumps(summary.get(
-                "flag_rules"))),
-            ("calibration", "none" if summary.get("calibration") is None
-             else json.dumps(summary["calibration"])),
             ("joint draws kept", int(result.sizes.get("fill_draw", 0))),
             ("history", attrs.get("history")),
         ],
+        "rules": rule_rows(summary.get("flag_rules") or {}),
+        "calibration": None if calibration is None else [
+            (f"{level} %", f"{float(factor):.3f}")
+            for level, factor in calibration.get("factors", {}).items()],
+        "calibration_source": None if calibration is None else calibration.get("path"),
         "diagnostics": [(key, _text(value)) for key, value in diagnostics.items()
                         if key != "warnings"],
         "warnings": list(diagnostics.get("warnings", [])),
         "verdict": verdict(diagnostics),
         "versions": list(summary.get("versions", {}).items()),
-        "spec": json.dumps(json.loads(spec), indent=2) if spec else "",
+        "spec": _flat(json.loads(spec)) if spec else [],
     }
+
+
+def method_words(summary: dict) -> str:
+    """The inference method in plain words, with gapband's version."""
+    words = {"gibbs": "Bayesian low-rank model, sampled by Gibbs sampling",
+             "nuts": "Bayesian low-rank model, sampled by NUTS (PyMC)",
+             "advi": "Bayesian low-rank model, approximated by variational inference (PyMC)"}
+    method = summary.get("method", "")
+    version = summary.get("versions", {}).get("gapband", "")
+    return f"{words.get(method, method)} (gapband {version})".strip()
 
 
 def verdict(diagnostics: dict) -> tuple[bool, str]:
@@ -65,9 +161,10 @@ def verdict(diagnostics: dict) -> tuple[bool, str]:
     if r_hat is None:
         return converged, ("The fit converged." if converged else
                            "The fit's convergence could not be checked.")
-    figures = (f"largest R-hat {r_hat:.3f} (target ≤ 1.01), smallest ESS "
-               f"{min(diagnostics['ess_bulk_min'], diagnostics['ess_tail_min']):.0f} "
-               "(target ≥ 400)")
+    sizes = [diagnostics[k] for k in ("ess_bulk_min", "ess_tail_min")
+             if diagnostics.get(k) is not None]
+    figures = f"largest R-hat {r_hat:.3f} (target ≤ 1.01)" + (
+        f", smallest ESS {min(sizes):.0f} (target ≥ 400)" if sizes else "")
     if converged:
         return True, f"The sampler's chains agree: {figures}."
     why = (" when its time budget ran out" if diagnostics.get("stopped_by") == "budget"
@@ -83,8 +180,7 @@ def capture(summary: dict, threshold: float) -> list[dict]:
         {"series": name, "measured": shares["measured"][name],
          "with_fills": shares["with_fills"][name],
          "with_confident_fills": shares["with_confident_fills"][name],
-         "meets_measured": shares["measured"][name] >= threshold,
-         "meets_with_fills": shares["with_fills"][name] >= threshold}
+         "meets_measured": shares["measured"][name] >= threshold}
         for name in shares["measured"]
     ]
 
@@ -97,25 +193,63 @@ def flag_counts(summary: dict) -> dict:
 
 
 def substitution_log(result: xr.Dataset, method: str) -> dict:
-    """Every filled run: series, start, end, cells, method, widest interval, flag."""
+    """Every filled run: where, how many cells (and how many uncertain), its mean and sources.
+
+    The run's mean fill has the central interval of the flag level over the
+    joint draws (``fill_draws``) when kept. The informing stations are the
+    two most correlated with the run's series (Pearson, over common observed
+    steps) among those observed through most of the run.
+    """
     flag = result["fill_flag"].transpose("series", "time").values
     filled = (flag == flags.FILLED) | (flag == flags.FILLED_UNCERTAIN)
     level = widest_level(result)
-    width = (result[f"upper_{level}"] - result[f"lower_{level}"]).transpose(
-        "series", "time").values if level else np.full(flag.shape, np.nan)
+    values = result["value"].transpose("series", "time").values
+    median = result["filled"].transpose("series", "time").values
     times = result["time"].values
     names = [str(s) for s in result["series"].values]
+    correlation = pd.DataFrame(values.T).corr(min_periods=10).to_numpy()
+    run_means = _run_mean_draws(result, flag.shape)
+    share = 1.0 - float(level.replace("_", ".")) / 100 if level else None
     rows = []
     for s, start, length in gap_runs(filled):
         run = slice(start, start + length)
+        draws = run_means(s, run) if share is not None else None
         rows.append({
             "series": names[s], "start": _stamp(times[start]),
-            "end": _stamp(times[start + length - 1]), "cells": length, "method": method,
-            "widest": float(np.nanmax(width[s, run])) if level else None,
-            "flag": "filled_uncertain" if (flag[s, run] == flags.FILLED_UNCERTAIN).any()
-            else "filled",
+            "end": _stamp(times[start + length - 1]), "cells": length,
+            "uncertain": int((flag[s, run] == flags.FILLED_UNCERTAIN).sum()),
+            "mean": float(np.mean(median[s, run])),
+            "lower": None if draws is None else float(np.quantile(draws, share / 2)),
+            "upper": None if draws is None else float(np.quantile(draws, 1 - share / 2)),
+            "informed_by": ", ".join(_informants(correlation, values, s, run, names)) or "–",
+            "cause": "not given",
         })
-    return {"level": level.replace("_", ".") if level else None, "rows": rows}
+    return {"level": level.replace("_", ".") if level else None, "rows": rows,
+            "method": method}
+
+
+def _run_mean_draws(result: xr.Dataset, shape: tuple[int, int]):
+    """A function (series, run slice) -> each joint draw's mean over the run, or None."""
+    if "fill_draws" not in result:
+        return lambda s, run: None
+    draws = result["fill_draws"].values
+    where = np.full(shape[0] * shape[1], -1)
+    where[result["missing_cell"].values] = np.arange(draws.shape[1])
+
+    def means(s: int, run: slice) -> np.ndarray | None:
+        columns = where[s * shape[1] + np.arange(run.start, run.stop)]
+        return None if (columns < 0).any() else draws[:, columns].mean(axis=1)
+
+    return means
+
+
+def _informants(correlation: np.ndarray, values: np.ndarray, s: int, run: slice,
+                names: list[str]) -> list[str]:
+    """The two series most correlated with series ``s`` that are observed through most of ``run``."""
+    present = np.isfinite(values[:, run]).mean(axis=1) >= 0.5
+    candidates = [(abs(correlation[s, m]), m) for m in range(len(names))
+                  if m != s and present[m] and np.isfinite(correlation[s, m])]
+    return [f"{names[m]} (r = {correlation[s, m]:.2f})" for _, m in sorted(candidates)[::-1][:2]]
 
 
 def widest_level(result: xr.Dataset) -> str | None:
@@ -217,6 +351,28 @@ def holdout(report: dict, input_sha256: str | None) -> dict:
     }
 
 
+def _flat(spec: dict, prefix: str = "") -> list[tuple[str, str]]:
+    """A spec as (key, value) rows: tables flattened to dotted keys, lists in words."""
+    rows = []
+    for key, value in spec.items():
+        name = f"{prefix}{key}"
+        if isinstance(value, dict):
+            rows += _flat(value, name + ".")
+        elif isinstance(value, list):
+            rows.append((name, "; ".join(", ".join(f"{k} {v}" for k, v in item.items())
+                                         if isinstance(item, dict) else str(item)
+                                         for item in value)))
+        elif value is not None:
+            rows.append((name, _text(value)))
+    return rows
+
+
+def _step_words(step: str) -> str:
+    """A grid step code in words ('h' -> 'hourly')."""
+    return {"h": "hourly", "D": "daily", "30min": "half-hourly", "MS": "monthly",
+            "M": "monthly", "W": "weekly"}.get(step, f"every {step}" if step else "")
+
+
 def _stamp(t: np.datetime64) -> str:
     return pd.Timestamp(t).strftime("%Y-%m-%d %H:%M")
 
@@ -226,8 +382,13 @@ def _day(t: Any) -> str:
 
 
 def _text(value: object) -> str:
+    """A diagnostic or spec value as short text: rounded numbers, no JSON."""
+    if isinstance(value, bool) or value is None:
+        return {True: "yes", False: "no", None: "–"}[value]
     if isinstance(value, float):
         return f"{value:.4g}"
-    if isinstance(value, dict | list):
-        return json.dumps(value)
+    if isinstance(value, dict):
+        return "; ".join(f"{k}: {_text(v)}" for k, v in value.items()) or "none"
+    if isinstance(value, list):
+        return "; ".join(_text(v) for v in value) or "none"
     return str(value)
