@@ -245,7 +245,7 @@ def _run_mean_draws(result: xr.Dataset, shape: tuple[int, int]):
 
 def _informants(correlation: np.ndarray, values: np.ndarray, s: int, run: slice,
                 names: list[str]) -> list[str]:
-    """The two series most correlated with series ``s`` that are observed through most of ``run``."""
+    """The two series most correlated with series ``s``, observed through most of ``run``."""
     present = np.isfinite(values[:, run]).mean(axis=1) >= 0.5
     candidates = [(abs(correlation[s, m]), m) for m in range(len(names))
                   if m != s and present[m] and np.isfinite(correlation[s, m])]
