@@ -195,3 +195,30 @@ def test_report_renders_in_a_real_browser(fill_dir, report_html, tmp_path):
     for heading in HEADINGS:
         assert f">{heading}</h2>" in dom, heading
     assert "&lt;script&gt;alert(1)&lt;/script&gt;" in dom
+
+
+def test_substitution_log_interval_is_of_the_run_mean(fill_dir):
+    # The run's mean from the joint draws, rebuilt by the recipe of docs/outputs.md
+    # ("Reconstructing draw d of a series' complete record"): each draw's mean
+    # over the run's cells, its 5 % and 95 % quantiles (numpy's default, linear).
+    from gapband import outputs
+    from gapband.report import content
+
+    result, _ = outputs.open_fill(fill_dir)
+    log = content.substitution_log(result, "gibbs")
+    assert log["level"] == "90"
+    n_series, n_time = result.sizes["series"], result.sizes["time"]
+    complete = np.broadcast_to(result["value"].transpose("series", "time").values,
+                               (result.sizes["fill_draw"], n_series, n_time)).copy()
+    cells = result["missing_cell"].values
+    complete[:, cells // n_time, cells % n_time] = result["fill_draws"].values
+    names = [str(s) for s in result["series"].values]
+    times = [content._stamp(t) for t in result["time"].values]
+    checked = 0
+    for row in log["rows"]:
+        s, a, b = names.index(row["series"]), times.index(row["start"]), times.index(row["end"])
+        means = complete[:, s, a : b + 1].mean(axis=1)
+        assert row["lower"] == pytest.approx(np.quantile(means, 0.05), rel=1e-6)
+        assert row["upper"] == pytest.approx(np.quantile(means, 0.95), rel=1e-6)
+        checked += 1
+    assert checked == len(log["rows"]) > 0
