@@ -254,6 +254,9 @@ def plan_and_runner(panel, model, given: dict) -> tuple:
               "(by default they are flagged filled_uncertain).")
 @click.option("--table", type=click.Choice(["csv", "parquet"]), default="csv",
               show_default=True, help="Format of the long table.")
+@click.option("--causes", "causes_path", type=click.Path(path_type=Path), metavar="CSV",
+              help="Known causes of gaps (series, start, end, cause[, planned]): carried into "
+              "filled.nc, the report's substitution log and the capture figures.")
 @click.option("--decimals", default="input", show_default=True, callback=lambda ctx, param,
               text: parse_decimals(text), metavar="input|full|N",
               help="Decimals of the fills in the long table: as the input's observed values, "
@@ -265,7 +268,7 @@ def plan_and_runner(panel, model, given: dict) -> tuple:
 @click.option("--overwrite", is_flag=True, help="Replace existing outputs in --out.")
 @handle_errors
 def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width, max_gap,
-         accept_unconverged, table, decimals, keep_draws, overwrite, **kw):
+         accept_unconverged, table, causes_path, decimals, keep_draws, overwrite, **kw):
     """Fill every missing cell of INPUT with a credible interval and a flag."""
     from gapband import filling
     from gapband.outputs import prepare_dir
@@ -277,6 +280,11 @@ def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width,
     blocks = block_settings(kw)
     prepare_dir(out_dir, ["filled.nc", f"filled.{table}", "summary.json"], overwrite)
     panel = gapband.read(input_path, **kw)
+    known = None
+    if causes_path is not None:
+        from gapband import causes
+
+        known = causes.read(causes_path, [str(s) for s in panel["series"].values])
     if blocks is None:
         result, summary = filling.fill(panel, model=model, transform=transform,
                                        options=options, calibration=calibration)
@@ -286,6 +294,11 @@ def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width,
         plan, runner = plan_and_runner(panel, model, blocks)
         result, summary = fill_blocks(panel, plan, model=model, transform=transform,
                                       options=options, calibration=calibration, runner=runner)
+    if known is not None:
+        result = causes.attach(result, known)
+        summary["capture"] = filling.capture_before_after(result)
+        summary["causes"] = {"file": str(causes_path), "rows": len(known),
+                             "planned": int(known["planned"].sum())}
     written = filling.write_fill(result, summary, out_dir, table=table, decimals=decimals,
                                  overwrite=True)
     for warning in summary["diagnostics"].get("warnings", []):

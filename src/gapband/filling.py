@@ -23,7 +23,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from gapband import flags, outputs, resources
+from gapband import causes, flags, outputs, resources
 from gapband.chains import DEFAULT_CHAINS, TIME_BUDGET
 from gapband.errors import GapbandError, InputError, UsageError
 from gapband.panel import step_of
@@ -492,20 +492,31 @@ def _thin(posterior: xr.Dataset, n_draws: int) -> xr.Dataset:
 
 
 def capture_before_after(result: xr.Dataset) -> dict:
-    """Capture % per series: measured only, and with fills (all, and confident only)."""
-    flag = result["fill_flag"]
-    expected = flag.sizes["time"]
+    """Capture % per series: measured only, and with fills (all, and confident only).
 
-    def pct(mask: xr.DataArray) -> dict[str, float]:
-        shares = 100.0 * mask.sum("time") / expected
-        return {str(s): round(float(v), 2) for s, v in zip(result["series"].values, shares.values,
-                                                            strict=True)}
+    With known causes attached (:mod:`gapband.causes`), also the measured
+    capture with the missing steps of planned maintenance left out of the
+    expected steps (``measured_excluding_planned``).
+    """
+    flag = result["fill_flag"].transpose("series", "time")
+    names = [str(s) for s in result["series"].values]
 
-    return {
-        "measured": pct(flag == flags.OBSERVED),
-        "with_fills": pct(flag != flags.NOT_FILLED),
-        "with_confident_fills": pct((flag == flags.OBSERVED) | (flag == flags.FILLED)),
+    def pct(mask: np.ndarray, expected: np.ndarray | int) -> dict[str, float]:
+        shares = 100.0 * mask.sum(axis=1) / np.maximum(expected, 1)
+        return {name: round(float(v), 2) for name, v in zip(names, shares, strict=True)}
+
+    values, steps = flag.values, flag.sizes["time"]
+    observed = values == flags.OBSERVED
+    shares = {
+        "measured": pct(observed, steps),
+        "with_fills": pct(values != flags.NOT_FILLED, steps),
+        "with_confident_fills": pct(observed | (values == flags.FILLED), steps),
     }
+    planned = causes.planned_mask(result)
+    if planned is not None:
+        excused = (planned & ~observed).sum(axis=1)
+        shares["measured_excluding_planned"] = pct(observed, steps - excused)
+    return shares
 
 
 def provenance(

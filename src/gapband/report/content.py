@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from gapband import flags, stats
+from gapband import causes, flags, stats
 from gapband.errors import InputError, UsageError
 from gapband.filling import COMPONENTS
 from gapband.panel import gap_runs
@@ -180,6 +180,7 @@ def capture(summary: dict, threshold: float) -> list[dict]:
         {"series": name, "measured": shares["measured"][name],
          "with_fills": shares["with_fills"][name],
          "with_confident_fills": shares["with_confident_fills"][name],
+         "excluding_planned": shares.get("measured_excluding_planned", {}).get(name),
          "meets_measured": shares["measured"][name] >= threshold}
         for name in shares["measured"]
     ]
@@ -222,7 +223,7 @@ def substitution_log(result: xr.Dataset, method: str) -> dict:
             "lower": None if draws is None else float(np.quantile(draws, share / 2)),
             "upper": None if draws is None else float(np.quantile(draws, 1 - share / 2)),
             "informed_by": ", ".join(_informants(correlation, values, s, run, names)) or "–",
-            "cause": "not given",
+            "cause": causes.of_run(result, names[s], times[start], times[start + length - 1]),
         })
     return {"level": level.replace("_", ".") if level else None, "rows": rows,
             "method": method}
