@@ -87,7 +87,8 @@ def use_verdict(summary: dict) -> tuple[bool, str]:
         text += " (rules: " + "; ".join(f"{label} {value}" for label, value in reasons) + ")"
     text += "."
     if missing:
-        text += f" {missing} could not be filled (too few observations of their series)."
+        text += (f" {missing} could not be filled (a series with too few observations, or "
+                 "no finite prediction; see the flag counts).")
     return uncertain == 0 and missing == 0, text
 
 
