@@ -50,6 +50,34 @@ def test_stationary_ar_logp_is_the_exact_gaussian_density(coefficients):
     np.testing.assert_allclose(got, expected, rtol=1e-10)
 
 
+@pytest.mark.parametrize("coefficients", [[0.6], [0.9, -0.5, 0.2]])
+def test_stationary_ar_draws_have_the_density_s_covariance(coefficients):
+    # Source: statsmodels ArmaProcess.acovf, scaled to unit variance, is the
+    # covariance of the density above; the draws (for prior predictive checks)
+    # must have it from their first value on (stationary start), within the
+    # Monte Carlo error of 20,000 rows (sd of a sample correlation < 0.01).
+    process = ArmaProcess(np.r_[1.0, -np.asarray(coefficients)], [1.0])
+    order = len(coefficients)
+    pacf = process.pacf(order + 1)[1:]
+    acov = process.acovf(6) / process.acovf(1)[0]
+    draw = model._stationary_ar_random((20_000, order))
+    x = draw(np.tile(pacf, (20_000, 1)), rng=np.random.default_rng(4), size=(20_000, 6))
+    np.testing.assert_allclose(np.cov(x, rowvar=False), _toeplitz(acov), atol=0.04)
+
+
+def test_prior_predictive_draws_come_from_the_whole_model():
+    # PyMC's prior predictive sampling (pm.sample_prior_predictive) must reach
+    # every variable, the short-term and own AR paths included.
+    import pymc as pm
+
+    panel = _panel(_hourly_values(n_time=200))
+    built = model.build(panel, spec.parse({"base": "hourly", "rank": 1}))
+    with built.model:
+        prior = pm.sample_prior_predictive(draws=5, random_seed=2).prior
+    assert {"ar", "own_unit", "trend"} <= set(prior.data_vars)
+    assert np.isfinite(prior["own_unit"].values).all() and np.isfinite(prior["ar"].values).all()
+
+
 def _toeplitz(acov):
     idx = np.arange(acov.size)
     return acov[np.abs(idx[:, None] - idx[None, :])]

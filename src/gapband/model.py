@@ -362,7 +362,7 @@ def _short_term(spec: ModelSpec, ar_factors: int):
                      dims=("short_factor", "lag"))
     ar = pm.CustomDist(
         "ar", pacf, logp=lambda value, p: _stationary_ar_logp(value, p, (ar_factors, order)),
-        dims=("short_factor", "time"),
+        random=_stationary_ar_random((ar_factors, order)), dims=("short_factor", "time"),
     )
     loading = pm.Normal("short_loading", 0.0, spec.priors.loading,
                         dims=("series", "short_factor"))
@@ -377,7 +377,7 @@ def _own(spec: ModelSpec, n_series: int):
     unit = pm.CustomDist(
         "own_unit", rho[:, None],
         logp=lambda value, p: _stationary_ar_logp(value, p, (n_series, 1)),
-        dims=("series", "time"),
+        random=_stationary_ar_random((n_series, 1)), dims=("series", "time"),
     )
     return sd[:, None] * unit
 
@@ -399,6 +399,31 @@ def _levinson(pacf, order: int):
         variances.append(variance)
         previous = current
     return phis, variances
+
+
+def _stationary_ar_random(shape: tuple[int, int]):
+    """A draw function for :func:`_stationary_ar_logp`'s rows (prior predictive checks).
+
+    Each row starts from its stationary distribution and follows the same
+    prediction-error recursion as the density: order m < p with the order-m
+    coefficients, then the full order.
+    """
+    rows, order = shape
+
+    def random(pacf, rng=None, size=None):
+        pacf = np.broadcast_to(np.asarray(pacf, dtype=float), shape)
+        phis, variances = _levinson(pacf, order)
+        n_time = size[-1]
+        shocks = rng.standard_normal((rows, n_time))
+        x = np.empty((rows, n_time))
+        x[:, 0] = shocks[:, 0]
+        for t in range(1, n_time):
+            m = min(t, order)
+            pred = sum(phis[m - 1][i] * x[:, t - 1 - i] for i in range(m))
+            x[:, t] = pred + np.sqrt(variances[m - 1]) * shocks[:, t]
+        return x.reshape(size)
+
+    return random
 
 
 def _normal_logp(x, mu, var):
