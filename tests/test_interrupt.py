@@ -118,7 +118,7 @@ def complete(path: Path) -> bool:
                 return ds["fill_flag"].shape == (len(SERIES), STEPS)
         if path.suffix == ".csv":
             table = pd.read_csv(path)
-            return len(table) == len(SERIES) * STEPS and list(table.columns)[-1] == "flag"
+            return len(table) == len(SERIES) * STEPS and list(table.columns)[-1] == "flag_code"
         return "flags" in json.loads(path.read_text(encoding="utf-8"))
     except (OSError, ValueError, KeyError):
         return False
@@ -162,7 +162,8 @@ def test_signal_during_the_writes_keeps_the_previous_set(tmp_path, monkeypatch):
         raise AssertionError("the signal should have stopped the write")
 
     monkeypatch.setattr(outputs, "write_netcdf", lambda result, path: Path(path).write_text("n"))
-    monkeypatch.setattr(outputs, "write_table", lambda result, path: Path(path).write_text("t"))
+    monkeypatch.setattr(outputs, "write_table",
+                        lambda result, path, *rest: Path(path).write_text("t"))
     monkeypatch.setattr(outputs, "write_json", interrupted_json)
     previous = signal.signal(signal.SIGTERM, cli._interrupt)
     try:
