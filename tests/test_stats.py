@@ -215,7 +215,7 @@ def test_running_8h_means_and_daily_maxima_equal_pandas_without_gaps():
             np.testing.assert_allclose(row["measured"].values, reference.to_numpy(), rtol=1e-9)
             assert np.array_equal(row["lower"].values, row["upper"].values)
             assert np.array_equal(row["estimate"].values, row["lower"].values)
-        # The record starts at 05:00: its first day holds 14 valid running means of 24 and
+        # The record starts at 06:00: its first day holds 13 valid running means of 24 and
         # is left out by the day=18/24 rule, as here.
         daily = running.resample("D")
         monthly = daily.max().where(daily.count() >= 18).resample("MS").mean()
@@ -355,6 +355,15 @@ def test_percentile_share_is_the_weight_of_filled_cells():
         ({"min_capture": "abc"}, "min-capture 'abc'"),
         ({"period": "week"}, "--period 'week'"),
         ({"over": "hour"}, "--over 'hour'"),
+        ({"over": ["step", "step"]}, "--over is given twice"),
+        ({"over": "running"}, "--over running needs a window: add --running"),
+        ({"running": "3D"}, "--running '3D' is used only by --over running"),
+        ({"over": "running", "running": "36h"}, "--running '36h' must be a duration of whole"),
+        ({"over": "running", "running": "0D"}, "--running '0D' must be a duration of whole"),
+        ({"over": "running", "running": "eight"}, "--running 'eight' must be a duration"),
+        ({"min_capture": "hour=75"}, "'hour' is not one of period, day, running"),
+        ({"min_capture": ["day=75", "day=18/24"]}, "gives the day rule twice"),
+        ({"min_capture": "day=120"}, "--min-capture 'day=120' must be a percentage"),
         ({"level": 100}, "--level 100"),
     ],
 )
@@ -460,6 +469,34 @@ def test_cli_stats_writes_csv_and_json(filled_dir):
     assert again.exit_code == 2 and "--overwrite" in again.output
 
 
+def test_cli_stats_day_and_running_units(filled_dir, tmp_path):
+    out, table = filled_dir
+    run = CliRunner().invoke(cli, [
+        "stats", str(out), "--period", "month", "--out", str(tmp_path), "--max",
+        "--percentile", "90", "--exceed", "60", "--over", "step", "--over", "running",
+        "--over", "day-max-running", "--running", "7D", "--min-capture", "running=5/7",
+        "--min-capture", "period=90"])
+    assert run.exit_code == 0, run.output
+    rows = pd.read_csv(tmp_path / "stats-month.csv")
+    assert set(rows["statistic"]) == {
+        "max", "p90", "step > 60", "max of running-168h", "p90 of running-168h",
+        "running-168h > 60", "max of day-max-running-168h", "p90 of day-max-running-168h",
+        "day-max-running-168h > 60"}
+    assert set(rows.loc[rows["over"] != "step", "window"]) == {"168h"}
+    assert rows["filled_pct"].dropna().between(0, 100).all()
+    # Temp is complete: its weekly running means equal pandas' (Source: pandas
+    # rolling(7, min_periods=5).mean(); a day holds one running mean on a daily grid).
+    weekly = table["Temp"].rolling(7, min_periods=5).mean()
+    temp = rows[(rows["series"] == "Temp") & (rows["statistic"] == "max of running-168h")]
+    np.testing.assert_allclose(temp["estimate"], weekly.resample("MS").max(), rtol=1e-9)
+    assert (temp["lower_90"] == temp["upper_90"]).all()
+    document = json.loads((tmp_path / "stats-month.json").read_text(encoding="utf-8"))
+    assert document["min_capture_pct"] == {"period": 90.0, "day": 75.0,
+                                           "running": pytest.approx(500 / 7)}
+    assert "a running mean over 168h is valid when at least 71.4286 % of its 7" in document[
+        "validity_rule"]
+
+
 def test_cli_stats_bad_input(filled_dir, tmp_path):
     out, _ = filled_dir
     runner = CliRunner()
@@ -471,3 +508,6 @@ def test_cli_stats_bad_input(filled_dir, tmp_path):
     year = runner.invoke(cli, ["stats", str(out), "--period", "year", "--out",
                                str(tmp_path / "y")])
     assert year.exit_code == 2 and "longer than the data" in year.output
+    window = runner.invoke(cli, ["stats", str(out), "--period", "month", "--over", "running",
+                                 "--out", str(tmp_path / "z")])
+    assert window.exit_code == 2 and "add --running, e.g. 8h" in window.output

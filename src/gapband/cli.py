@@ -412,19 +412,19 @@ def _number(value: float | None, spec: str) -> str:
 @click.option("--exceed", "thresholds", multiple=True, metavar="VALUE",
               help="Count the period's units above VALUE (data units) (repeatable).")
 @click.option("--over", "overs", type=click.Choice(OVERS), multiple=True,
-              default=OVERS[:1], show_default=True,
+              default=OVERS[:1],
               help="The units every statistic runs over: time steps, days by their mean or "
               "maximum, running means over --running, or days by their largest running mean "
-              "(repeatable).")
+              f"(repeatable; default {OVERS[0]}).")
 @click.option("--running", metavar="DURATION",
               help="Window of the running means, whole grid steps, e.g. '8h' (the mean of "
               "the steps ending at each step).")
 @click.option("--min-capture", "min_capture", multiple=True,
-              default=(f"{DEFAULT_MIN_CAPTURE:g}",),
-              show_default=True, metavar="[RULE=]PCT|A/B",
+              default=(f"{DEFAULT_MIN_CAPTURE:g}",), metavar="[RULE=]PCT|A/B",
               help="Validity rules on observed values: 'period=' share of a period's units "
               "valid, 'day=' of a day's steps (or running means), 'running=' of a window's "
-              "steps; a plain '75' or '18/24' sets every rule (repeatable).")
+              "steps; a plain '75' or '18/24' sets every rule (repeatable; default "
+              f"{DEFAULT_MIN_CAPTURE:g}).")
 @click.option("--level", type=float, default=DEFAULT_LEVEL, show_default=True,
               help="Central credible interval level (%).")
 @click.option("--out", "out_dir", type=click.Path(path_type=Path),
