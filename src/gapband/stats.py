@@ -61,8 +61,12 @@ DEFAULT_LEVEL = 90.0
 
 @dataclass(frozen=True)
 class Validity:
-    """Validity rules in percent: of a period's units (steps, days or running
-    means), of a day's steps (or running means), of a running window's steps."""
+    """Validity rules in percent.
+
+    ``period``: of a period's units (steps, days or running means) valid;
+    ``day``: of a day's steps observed (or running means valid); ``running``:
+    of a running window's steps observed.
+    """
 
     period: float = DEFAULT_MIN_CAPTURE
     day: float = DEFAULT_MIN_CAPTURE
@@ -71,8 +75,10 @@ class Validity:
 
 @dataclass(frozen=True)
 class Statistic:
-    """One statistic asked for: a mean, a maximum, a percentile or a count of
-    exceedances, over the units ``over`` (``window``: the running window, e.g. ``8h``)."""
+    """One statistic asked for: a mean, a maximum, a percentile or a count of exceedances.
+
+    It runs over the units ``over``; ``window`` is the running window (``8h``) or empty.
+    """
 
     kind: Literal["mean", "max", "percentile", "exceedances"]
     over: Over = "step"
@@ -374,9 +380,11 @@ def rule_text(stats: xr.Dataset) -> str:
 
 
 def parse_min_capture(given: float | str | Sequence[float | str]) -> Validity:
-    """Validity rules from ``75``, ``"18/24"`` (every rule) or ``"day=18/24"``,
-    ``"running=6/8"``, ``"period=90"`` (one rule), alone or in a sequence; a rule
-    not given takes the plain value, or 75 % when there is none.
+    """Validity rules from ``--min-capture`` values, alone or in a sequence.
+
+    ``75`` or ``"18/24"`` sets every rule; ``"day=18/24"``, ``"running=6/8"``,
+    ``"period=90"`` set one. A rule not named takes the plain value, or 75 %
+    when there is none.
 
     Raises
     ------

@@ -19,10 +19,13 @@ import numpy as np
 
 @dataclass(frozen=True)
 class Units:
-    """One series' units: ``values`` (draws, unit) from the completed draws and
-    ``measured`` (unit,) from observed values, both NaN where a unit is left
-    out; ``filled`` (unit,) the fraction of each unit's value coming from
-    filled cells; ``valid`` (unit,) whether the unit meets its rule."""
+    """One series' units of one kind.
+
+    ``values`` (draws, unit) from the completed draws and ``measured`` (unit,)
+    from observed values, both NaN where a unit is left out; ``filled``
+    (unit,) the fraction of each unit's value coming from filled cells;
+    ``valid`` (unit,) whether the unit meets its rule.
+    """
 
     values: np.ndarray
     measured: np.ndarray
@@ -43,8 +46,10 @@ def steps(draws: np.ndarray, value: np.ndarray, filled: np.ndarray) -> Units:
 
 def days(kind: str, draws: np.ndarray, value: np.ndarray, filled: np.ndarray,
          first: np.ndarray, expected: np.ndarray, rule_pct: float) -> Units:
-    """Day means (``kind="mean"``) or maxima of the steps; ``first``/``expected``: each
-    day's first step and its steps in a whole day."""
+    """Day means (``kind="mean"``) or maxima (``"max"``) of the steps.
+
+    ``first``/``expected``: each day's first step and the steps of a whole day.
+    """
     observed = ~np.isnan(value)
     valid = np.add.reduceat(observed.astype("int64"), first) >= needed(rule_pct, expected)
     if kind == "mean":
