@@ -638,25 +638,34 @@ def _percentile(p: float, units: windows.Units,
     n_periods = first.size
     per_draw = np.full((units.values.shape[0], n_periods), np.nan)
     share, measured = np.full(n_periods, np.nan), np.full(n_periods, np.nan)
-    bounds = np.append(first, units.values.shape[1])
-    for j in range(n_periods):
-        seg = slice(bounds[j], bounds[j + 1])
-        present = ~np.isnan(units.values[0, seg])
-        if present.any():
-            block, from_fill = units.values[:, seg][:, present], units.filled[seg][present]
-            position = (block.shape[1] - 1) * p / 100
-            lo = int(np.floor(position))
-            hi, frac = min(lo + 1, block.shape[1] - 1), position - lo
-            # Only the two order statistics are needed: a partition, not a full sort.
-            order = np.argpartition(block, sorted({lo, hi}), axis=1)[:, [lo, hi]]
-            low, high = np.take_along_axis(block, order, axis=1).T
-            per_draw[:, j] = low + frac * (high - low)
-            weight = (1 - frac) * from_fill[order[:, 0]] + frac * from_fill[order[:, 1]]
-            share[j] = weight.mean()
-        seen = units.measured[seg][~np.isnan(units.measured[seg])]
-        if seen.size:
-            measured[j] = np.quantile(seen, p / 100)
+    for periods, idx in _same_size(~np.isnan(units.values[0]), first):
+        block, n = units.values[:, idx], idx.shape[1]
+        position = (n - 1) * p / 100
+        lo = int(np.floor(position))
+        hi, frac = min(lo + 1, n - 1), position - lo
+        # Only the two order statistics are needed: the largest, or a partition, never a sort.
+        if lo == n - 1:
+            order = np.repeat(np.argmax(block, axis=-1)[..., None], 2, axis=-1)
+        else:
+            order = np.argpartition(block, sorted({lo, hi}), axis=-1)[..., [lo, hi]]
+        low, high = np.moveaxis(np.take_along_axis(block, order, axis=-1), -1, 0)
+        per_draw[:, periods] = low + frac * (high - low)
+        from_fill = np.take_along_axis(np.broadcast_to(units.filled[idx], block.shape), order,
+                                       axis=-1)
+        share[periods] = ((1 - frac) * from_fill[..., 0] + frac * from_fill[..., 1]).mean(axis=0)
+    for periods, idx in _same_size(~np.isnan(units.measured), first):
+        measured[periods] = np.quantile(units.measured[idx], p / 100, axis=-1)
     return per_draw, share, measured
+
+
+def _same_size(present: np.ndarray, first: np.ndarray):
+    """Periods grouped by their count of present units: (periods, unit indices (period, n))."""
+    counts = np.add.reduceat(present.astype("int64"), first)
+    where = np.flatnonzero(present)
+    owner = np.repeat(np.arange(first.size), counts)
+    for n in np.unique(counts[counts > 0]):
+        periods = np.flatnonzero(counts == n)
+        yield periods, where[np.isin(owner, periods)].reshape(periods.size, n)
 
 
 def _exceedances(threshold: float, units: windows.Units,
