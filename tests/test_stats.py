@@ -224,6 +224,22 @@ def test_running_8h_means_and_daily_maxima_equal_pandas_without_gaps():
         assert np.array_equal(row["lower"].values, row["upper"].values)
 
 
+def test_measured_running_means_with_real_gaps_equal_pandas():
+    wide = nyc_temperature()  # real gaps
+    draws = np.full((3, int(wide.isna().sum().sum())), 150.0)
+    result = stats.period_stats(fill_like(wide, "h", draws), period="day", maximum=True,
+                                over="running", running="8h", min_capture="running=6/8")
+    for name in wide.columns:
+        # Source: pandas — rolling(8, min_periods=6).mean() skips missing hours and needs 6
+        # present of the 8: the measured running mean under the running=6/8 rule.
+        reference = wide[name].rolling(8, min_periods=6).mean().resample("D").max()
+        row = rows_of(result, "max of running-8h", name)
+        np.testing.assert_allclose(row["measured"].values, reference.to_numpy(), rtol=1e-9)
+        # The same windows in the estimate: fills of 150 °F raise it only where a valid
+        # window holds a filled hour.
+        assert (np.isnan(row["estimate"].values) == np.isnan(reference.to_numpy())).all()
+
+
 @pytest.mark.parametrize("over", ["day-mean", "day-max"])
 def test_percentiles_of_day_values_equal_numpy_without_gaps(over):
     wide = nyc_temperature().interpolate(limit_direction="both")

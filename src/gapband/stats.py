@@ -19,7 +19,7 @@ docs/stats.md for each statistic's definition).
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Literal
@@ -363,7 +363,7 @@ def rule_text(stats: xr.Dataset) -> str:
     if "day-max-running" in overs:
         parts.append(f"for the daily maximum running mean a day is valid when at least "
                      f"{day:g} % of its running means are valid")
-    if overs & set(_DAY_OVERS):
+    if overs & set(_DAY_OVERS) and period != "day":
         parts.append(f"for statistics of days a {period} is valid when at least {whole:g} % "
                      "of its days are valid")
     text = "; ".join(parts) + "; filled cells never make anything valid"
@@ -658,7 +658,8 @@ def _percentile(p: float, units: windows.Units,
     return per_draw, share, measured
 
 
-def _same_size(present: np.ndarray, first: np.ndarray):
+def _same_size(present: np.ndarray,
+               first: np.ndarray) -> Iterator[tuple[np.ndarray, np.ndarray]]:
     """Periods grouped by their count of present units: (periods, unit indices (period, n))."""
     counts = np.add.reduceat(present.astype("int64"), first)
     where = np.flatnonzero(present)
