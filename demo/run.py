@@ -54,7 +54,8 @@ class Quantity:
 
 
 #: no2 is positive and right-skewed: filled on the log scale so fills stay
-#: positive. The exceedance threshold is illustrative, not a limit value.
+#: positive. The exceedance threshold (hours above 50) is illustrative, not a limit
+#: value.
 DEMO_QUANTITIES = (
     Quantity("no2", QUANTITIES["no2"], "log", percentiles=(98,), exceed=(50,)),
     Quantity("temp", QUANTITIES["temp"], None, percentiles=(98,)),

@@ -86,7 +86,7 @@ def test_no_missing_cells_every_statistic_equals_pandas_with_zero_width():
             np.testing.assert_allclose(row["measured"].values, reference.to_numpy(), rtol=1e-12)
             assert np.array_equal(row["lower"].values, row["upper"].values)
             assert np.array_equal(row["lower"].values, row["estimate"].values)
-            assert (row["filled_share"].values[~np.isnan(row["filled_share"].values)] == 0).all()
+            assert (row["filled_pct"].values[~np.isnan(row["filled_pct"].values)] == 0).all()
     assert (result["capture_pct"] == 100).all()
 
 
@@ -117,7 +117,8 @@ def test_statistics_are_computed_per_joint_draw_like_pandas():
     rng = np.random.default_rng(7)
     draws = rng.normal(55.0, 15.0, size=(9, n_missing))
     result = stats.period_stats(fill_like(wide, "h", draws), period="month", mean=True,
-                                percentiles=[98], exceed=[75], over="day-mean", level=80)
+                                percentiles=[98], exceed=[75], over=["step", "day-mean"],
+                                level=80)
     per_draw = {"mean": [], "p98": [], "day-mean > 75": []}
     for draw in draws:
         full = completed(wide, draw)
@@ -136,8 +137,8 @@ def test_statistics_are_computed_per_joint_draw_like_pandas():
     counts = wide.resample("MS").count()
     length = wide.resample("MS").size()
     for name in wide.columns:
-        share = rows_of(result, "mean", name)["filled_share"].values
-        np.testing.assert_allclose(share, 1 - counts[name].to_numpy() / length.to_numpy())
+        share = rows_of(result, "mean", name)["filled_pct"].values
+        np.testing.assert_allclose(share, 100 * (1 - counts[name].to_numpy() / length.to_numpy()))
 
 
 def test_measured_figures_follow_the_18_of_24_rule():
@@ -188,6 +189,142 @@ def test_capture_counts_the_whole_calendar_period():
                                100 * counts / np.array([31 * 24, 28 * 24]))
 
 
+def test_running_8h_means_and_daily_maxima_equal_pandas_without_gaps():
+    wide = nyc_temperature().interpolate(limit_direction="both")  # a complete hourly record
+    by_day = stats.period_stats(fill_like(wide, "h"), period="day", mean=True, maximum=True,
+                                over=["step", "running"], running="8h",
+                                min_capture="running=6/8")
+    by_month = stats.period_stats(fill_like(wide, "h"), period="month", mean=True,
+                                  over="day-max-running", running="8h",
+                                  min_capture=["running=6/8", "day=18/24"])
+    for name in wide.columns:
+        # Source: pandas — rolling(8, min_periods=6).mean() is the mean of the 8 hours
+        # ending at each hour, left out with fewer than 6 (our running=6/8 rule);
+        # resample("D").max() / .mean() for the daily figures.
+        running = wide[name].rolling(8, min_periods=6).mean()
+        expected = {
+            "max": wide[name].resample("D").max(),
+            "mean of running-8h": running.resample("D").mean(),
+            "max of running-8h": running.resample("D").max(),
+        }
+        for label, reference in expected.items():
+            row = rows_of(by_day, label, name)
+            # Running sums come from one cumulative sum: equal to rounding, not bit for bit.
+            np.testing.assert_allclose(row["estimate"].values, reference.to_numpy(), rtol=1e-9,
+                                       err_msg=f"{name} {label}")
+            np.testing.assert_allclose(row["measured"].values, reference.to_numpy(), rtol=1e-9)
+            assert np.array_equal(row["lower"].values, row["upper"].values)
+            assert np.array_equal(row["estimate"].values, row["lower"].values)
+        # The record starts at 06:00: its first day holds 13 valid running means of 24 and
+        # is left out by the day=18/24 rule, as here.
+        daily = running.resample("D")
+        monthly = daily.max().where(daily.count() >= 18).resample("MS").mean()
+        row = rows_of(by_month, "mean of day-max-running-8h", name)
+        np.testing.assert_allclose(row["estimate"].values, monthly.to_numpy(), rtol=1e-9)
+        assert np.array_equal(row["lower"].values, row["upper"].values)
+
+
+def test_measured_running_means_with_real_gaps_equal_pandas():
+    wide = nyc_temperature()  # real gaps
+    draws = np.full((3, int(wide.isna().sum().sum())), 150.0)
+    result = stats.period_stats(fill_like(wide, "h", draws), period="day", maximum=True,
+                                over="running", running="8h", min_capture="running=6/8")
+    for name in wide.columns:
+        # Source: pandas — rolling(8, min_periods=6).mean() skips missing hours and needs 6
+        # present of the 8: the measured running mean under the running=6/8 rule.
+        reference = wide[name].rolling(8, min_periods=6).mean().resample("D").max()
+        row = rows_of(result, "max of running-8h", name)
+        np.testing.assert_allclose(row["measured"].values, reference.to_numpy(), rtol=1e-9)
+        # The same windows in the estimate: fills of 150 °F raise it only where a valid
+        # window holds a filled hour.
+        assert (np.isnan(row["estimate"].values) == np.isnan(reference.to_numpy())).all()
+
+
+@pytest.mark.parametrize("over", ["day-mean", "day-max"])
+def test_percentiles_of_day_values_equal_numpy_without_gaps(over):
+    wide = nyc_temperature().interpolate(limit_direction="both")
+    result = stats.period_stats(fill_like(wide, "h"), period="month", percentiles=[90.4, 98],
+                                over=over)
+    for name in wide.columns:
+        daily = wide[name].resample("D")
+        days = daily.mean() if over == "day-mean" else daily.max()
+        for p in (90.4, 98):
+            # Source: numpy.percentile with its default method "linear" (Hyndman and Fan's
+            # definition 7, also pandas' default): the definition gapband uses.
+            reference = [np.percentile(month.to_numpy(), p)
+                         for _, month in days.groupby(days.index.to_period("M"))]
+            row = rows_of(result, f"p{p:g} of {over}", name)
+            np.testing.assert_allclose(row["estimate"].values, reference, rtol=1e-12)
+            np.testing.assert_allclose(row["measured"].values, reference, rtol=1e-12)
+            assert np.array_equal(row["lower"].values, row["upper"].values)
+
+
+def test_validity_of_running_means_and_days_by_hand():
+    """Three hourly days of 10s: a 3-hour gap on day 2, a 4-hour gap on day 3, fills of 1000."""
+    times = pd.date_range("2021-06-01", periods=72, freq="h")
+    values = np.full(72, 10.0)
+    values[24 + 10 : 24 + 13] = np.nan
+    values[48 + 10 : 48 + 14] = np.nan
+    wide = pd.DataFrame({"s": values}, index=times)
+    draws = np.full((4, 7), 1000.0)
+    # Rules: 6 of 8 hours for an 8-hour running mean and 18 of 24 valid running means for a
+    # day (common practice for running 8-hour means, from memory); 75 % of a period's units.
+    result = stats.period_stats(fill_like(wide, "h", draws), period="day", mean=True,
+                                maximum=True, over=["running", "day-max-running"],
+                                running="8h",
+                                min_capture=["running=6/8", "day=18/24", "period=75"])
+    means = result.sel(series="s", statistic="mean of running-8h")
+    # By hand: the windows ending at hours 0-4 of day 1 hold fewer than 6 hours (the record
+    # starts there): 19 valid; day 2: those ending at 12-17 miss 3 hours: 18 valid; day 3:
+    # those ending at 12-18 miss 3 or 4 hours: 17 valid.
+    np.testing.assert_allclose(means["valid_pct"].values, 100 * np.array([19, 18, 17]) / 24)
+    assert means["valid"].values.tolist() == [True, True, False]
+    days = result.sel(series="s", statistic="max of day-max-running-8h")
+    assert days["valid"].values.tolist() == [True, True, False]
+    # Day 2's largest valid running mean ends at hour 11: (6 * 10 + 2 * 1000) / 8 = 257.5 in
+    # every draw; from observed hours alone the same window gives 10. Day 3 is invalid.
+    np.testing.assert_allclose(days["estimate"].values[:2], [10.0, 257.5])
+    np.testing.assert_allclose(days["measured"].values[:2], [10.0, 10.0])
+    assert np.isnan(days["estimate"].values[2]) and np.isnan(days["measured"].values[2])
+    text = stats.rule_text(result)
+    assert "a running mean over 8h is valid when at least 75 % of its 8 time steps" in text
+    assert "the daily maximum running mean a day is valid when at least 75 % of its running" in text
+    assert "for day aggregates" not in text
+
+
+def test_measured_and_estimated_day_exceedances_count_the_same_days():
+    """Four hourly days against a day-mean limit of 50, fills of 1000 or 100.
+
+    Day 1: 24 hours of 10. Day 2: 20 hours of 10 and 4 filled with 1000 (valid; its completed
+    mean 175 exceeds, its measured mean 10 does not). Day 3: 10 hours of 10, 14 filled with
+    1000 (invalid). Day 4: 17 hours of 100, 7 filled with 100 (invalid, one hour short).
+    """
+    times = pd.date_range("2021-06-01", periods=96, freq="h")
+    values = np.full(96, 10.0)
+    values[24 + 20 : 48] = np.nan
+    values[48 + 10 : 72] = np.nan
+    values[72:] = 100.0
+    values[72 + 17 :] = np.nan
+    fills = np.r_[np.full(4 + 14, 1000.0), np.full(7, 100.0)]
+    result = stats.period_stats(fill_like(wide := pd.DataFrame({"s": values}, index=times), "h",
+                                          np.tile(fills, (3, 1))),
+                                period="day", exceed=[50], over="day-mean", min_capture="18/24")
+    row = result.sel(series="s", statistic="day-mean > 50")
+    # Source: US 40 CFR Part 50, Appendix N, section 3.0(c): a day is valid with 18 of its
+    # 24 hours; days 3 and 4 are invalid and count in neither figure.
+    assert row["estimate"].values.tolist() == [0, 1, 0, 0]
+    assert row["measured"].values.tolist() == [0, 0, 0, 0]
+    assert np.array_equal(row["lower"].values, row["upper"].values)
+    np.testing.assert_allclose(row["filled_pct"].values[1], 100 * 4 / 24)
+    assert row["valid"].values.tolist() == [True, True, False, False]
+    # With no rule every day counts in both: the completed days 2, 3, 4 and the measured day 4.
+    free = stats.period_stats(fill_like(wide, "h", np.tile(fills, (3, 1))), period="day",
+                              exceed=[50], over="day-mean", min_capture="0")
+    row = free.sel(series="s", statistic="day-mean > 50")
+    assert row["estimate"].values.tolist() == [0, 1, 1, 1]
+    assert row["measured"].values.tolist() == [0, 0, 0, 1]
+
+
 def test_period_mean_interval_covers_the_truth_at_its_level():
     """Known process: i.i.d. Normal(10, 2) days, 10 of 30 missing, draws from the exact predictive.
 
@@ -218,10 +355,10 @@ def test_percentile_share_is_the_weight_of_filled_cells():
     wide.iloc[[3, 9], 0] = np.nan
     high = np.full((5, 2), 500.0)
     result = stats.period_stats(fill_like(wide, "D", high), period="month", percentiles=[100])
-    assert float(result["filled_share"].sel(statistic="p100", series="Temp")[0]) == 1.0
+    assert float(result["filled_pct"].sel(statistic="p100", series="Temp")[0]) == 100.0
     low = np.full((5, 2), -500.0)
     result = stats.period_stats(fill_like(wide, "D", low), period="month", percentiles=[100])
-    assert float(result["filled_share"].sel(statistic="p100", series="Temp")[0]) == 0.0
+    assert float(result["filled_pct"].sel(statistic="p100", series="Temp")[0]) == 0.0
 
 
 @pytest.mark.parametrize(
@@ -234,6 +371,15 @@ def test_percentile_share_is_the_weight_of_filled_cells():
         ({"min_capture": "abc"}, "min-capture 'abc'"),
         ({"period": "week"}, "--period 'week'"),
         ({"over": "hour"}, "--over 'hour'"),
+        ({"over": ["step", "step"]}, "--over is given twice"),
+        ({"over": "running"}, "--over running needs a window: add --running"),
+        ({"running": "3D"}, "--running '3D' is used only by --over running"),
+        ({"over": "running", "running": "36h"}, "--running '36h' must be a duration of whole"),
+        ({"over": "running", "running": "0D"}, "--running '0D' must be a duration of whole"),
+        ({"over": "running", "running": "eight"}, "--running 'eight' must be a duration"),
+        ({"min_capture": "hour=75"}, "'hour' is not one of period, day, running"),
+        ({"min_capture": ["day=75", "day=18/24"]}, "gives the day rule twice"),
+        ({"min_capture": "day=120"}, "--min-capture 'day=120' must be a percentage"),
         ({"level": 100}, "--level 100"),
     ],
 )
@@ -245,7 +391,7 @@ def test_bad_options_are_usage_errors(options, message):
 
 def test_day_aggregates_need_steps_of_a_day_or_less():
     wide = airquality().resample("MS").mean()
-    with pytest.raises(UsageError, match="need steps of a day or less"):
+    with pytest.raises(UsageError, match="day-mean needs steps of a day or less"):
         stats.period_stats(fill_like(wide, "MS"), period="month", exceed=[70], over="day-mean")
 
 
@@ -330,11 +476,41 @@ def test_cli_stats_writes_csv_and_json(filled_dir):
     assert (table["estimate"] <= table["upper_90"]).all()
     document = json.loads((out / "stats-month.json").read_text(encoding="utf-8"))
     assert document["format"] == "gapband stats" and len(document["rows"]) == len(table)
-    assert "40 CFR Part 50, Appendix N" in document["validity_rule"]
+    assert document["validity_rule"] == (
+        "for statistics of time steps a month is valid when at least 75 % of its expected time "
+        "steps are observed; filled cells never make anything valid")
     complete = table[table["series"] == "Temp"]  # Temp has no gaps: zero width
     assert (complete["lower_90"] == complete["upper_90"]).all()
     again = CliRunner().invoke(cli, ["stats", str(out), "--period", "month"])
     assert again.exit_code == 2 and "--overwrite" in again.output
+
+
+def test_cli_stats_day_and_running_units(filled_dir, tmp_path):
+    out, table = filled_dir
+    run = CliRunner().invoke(cli, [
+        "stats", str(out), "--period", "month", "--out", str(tmp_path), "--max",
+        "--percentile", "90", "--exceed", "60", "--over", "step", "--over", "running",
+        "--over", "day-max-running", "--running", "7D", "--min-capture", "running=5/7",
+        "--min-capture", "period=90"])
+    assert run.exit_code == 0, run.output
+    rows = pd.read_csv(tmp_path / "stats-month.csv")
+    assert set(rows["statistic"]) == {
+        "max", "p90", "step > 60", "max of running-168h", "p90 of running-168h",
+        "running-168h > 60", "max of day-max-running-168h", "p90 of day-max-running-168h",
+        "day-max-running-168h > 60"}
+    assert set(rows.loc[rows["over"] != "step", "window"]) == {"168h"}
+    assert rows["filled_pct"].dropna().between(0, 100).all()
+    # Temp is complete: its weekly running means equal pandas' (Source: pandas
+    # rolling(7, min_periods=5).mean(); a day holds one running mean on a daily grid).
+    weekly = table["Temp"].rolling(7, min_periods=5).mean()
+    temp = rows[(rows["series"] == "Temp") & (rows["statistic"] == "max of running-168h")]
+    np.testing.assert_allclose(temp["estimate"], weekly.resample("MS").max(), rtol=1e-9)
+    assert (temp["lower_90"] == temp["upper_90"]).all()
+    document = json.loads((tmp_path / "stats-month.json").read_text(encoding="utf-8"))
+    assert document["min_capture_pct"] == {"period": 90.0, "day": 75.0,
+                                           "running": pytest.approx(500 / 7)}
+    assert "a running mean over 168h is valid when at least 71.4286 % of its 7" in document[
+        "validity_rule"]
 
 
 def test_cli_stats_bad_input(filled_dir, tmp_path):
@@ -348,3 +524,6 @@ def test_cli_stats_bad_input(filled_dir, tmp_path):
     year = runner.invoke(cli, ["stats", str(out), "--period", "year", "--out",
                                str(tmp_path / "y")])
     assert year.exit_code == 2 and "longer than the data" in year.output
+    window = runner.invoke(cli, ["stats", str(out), "--period", "month", "--over", "running",
+                                 "--out", str(tmp_path / "z")])
+    assert window.exit_code == 2 and "add --running, e.g. 8h" in window.output

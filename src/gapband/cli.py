@@ -21,6 +21,7 @@ from rich.table import Table
 import gapband
 from gapband.chains import DEFAULT_CHAINS, TIME_BUDGET
 from gapband.errors import FitError, GapbandError, InputError, Interrupted, SpecError, UsageError
+from gapband.stats import DEFAULT_LEVEL, DEFAULT_MIN_CAPTURE, OVERS, PERIODS
 
 if TYPE_CHECKING:
     from gapband.filling import FillOptions
@@ -414,27 +415,37 @@ def _number(value: float | None, spec: str) -> str:
 
 @cli.command()
 @click.argument("fill_dir", metavar="DIR", type=click.Path(path_type=Path))
-@click.option("--period", type=click.Choice(["day", "month", "year"]), required=True,
+@click.option("--period", type=click.Choice(list(PERIODS)), required=True,
               help="Calendar period of the statistics.")
-@click.option("--mean", is_flag=True, help="The period mean (the default statistic).")
+@click.option("--mean", is_flag=True, help="The mean of the period's units (the default "
+              "statistic).")
+@click.option("--max", "maximum", is_flag=True, help="The maximum of the period's units.")
 @click.option("--percentile", "percentiles", type=float, multiple=True, metavar="P",
-              help="The P-th percentile of the period's values, P in (0, 100] (repeatable).")
+              help="The P-th percentile of the period's units, P in (0, 100] (repeatable).")
 @click.option("--exceed", "thresholds", multiple=True, metavar="VALUE",
-              help="Count values above VALUE (data units) in each period (repeatable).")
-@click.option("--over", type=click.Choice(["step", "day-mean", "day-max"]), default="day-mean",
-              show_default=True, help="What --exceed counts: time steps, or days by their "
-              "mean or maximum.")
-@click.option("--min-capture", default="75", show_default=True, metavar="PCT|A/B",
-              help="Validity rule on observed values: a period (and, for day aggregates, a "
-              "day) needs this % of its steps observed; '18/24' also works.")
-@click.option("--level", type=float, default=90, show_default=True,
+              help="Count the period's units above VALUE (data units) (repeatable).")
+@click.option("--over", "overs", type=click.Choice(OVERS), multiple=True,
+              default=OVERS[:1],
+              help="The units every statistic runs over: time steps, days by their mean or "
+              "maximum, running means over --running, or days by their largest running mean "
+              f"(repeatable; default {OVERS[0]}).")
+@click.option("--running", metavar="DURATION",
+              help="Window of the running means, whole grid steps, e.g. '8h' (the mean of "
+              "the steps ending at each step).")
+@click.option("--min-capture", "min_capture", multiple=True,
+              default=(f"{DEFAULT_MIN_CAPTURE:g}",), metavar="[RULE=]PCT|A/B",
+              help="Validity rules on observed values: 'period=' share of a period's units "
+              "valid, 'day=' of a day's steps (or running means), 'running=' of a window's "
+              "steps; a plain '75' or '18/24' sets every rule (repeatable; default "
+              f"{DEFAULT_MIN_CAPTURE:g}).")
+@click.option("--level", type=float, default=DEFAULT_LEVEL, show_default=True,
               help="Central credible interval level (%).")
 @click.option("--out", "out_dir", type=click.Path(path_type=Path),
               help="Folder for stats-<period>.csv and .json (default: DIR).")
 @click.option("--overwrite", is_flag=True, help="Replace existing stats files.")
 @handle_errors
-def stats(fill_dir, period, mean, percentiles, thresholds, over, min_capture, level, out_dir,
-          overwrite):
+def stats(fill_dir, period, mean, maximum, percentiles, thresholds, overs, running, min_capture,
+          level, out_dir, overwrite):
     """Period statistics with credible intervals from the fill in DIR."""
     from gapband import stats as period_stats
     from gapband.outputs import open_fill, prepare_dir
@@ -443,10 +454,10 @@ def stats(fill_dir, period, mean, percentiles, thresholds, over, min_capture, le
     prepare_dir(out_dir, [f"stats-{period}.csv", f"stats-{period}.json"], overwrite)
     result, _ = open_fill(fill_dir)
     computed = period_stats.period_stats(
-        result, period=period, mean=mean, percentiles=percentiles, exceed=thresholds,
-        over=over, min_capture=min_capture, level=level)
+        result, period=period, mean=mean, maximum=maximum, percentiles=percentiles,
+        exceed=thresholds, over=overs, running=running, min_capture=min_capture, level=level)
     console.print(stats_table(computed))
-    rule = period_stats.rule_text(computed.attrs["min_capture_pct"], period)
+    rule = period_stats.rule_text(computed)
     console.print(f"[dim]validity: {escape(rule)}[/]", highlight=False)
     for path in period_stats.write(computed, out_dir, overwrite=True):
         console.print(f"wrote {path}", highlight=False)
@@ -467,18 +478,19 @@ def stats_table(computed) -> Table:
         + (f"; first {STATS_ROWS_SHOWN} of {len(rows)} rows (all in the files)"
            if len(rows) > STATS_ROWS_SHOWN else ""),
     )
-    for header in ("series", "period", "statistic", "measured", "valid", "estimate",
-                   f"{level} % interval", "capture %", "filled share"):
+    for header in ("series", "period", "statistic", "measured", "valid", "valid units %",
+                   "estimate", f"{level} % interval", "capture %", "filled %"):
         table_.add_column(header, justify="left" if header in ("series", "period", "statistic")
                           else "right", no_wrap=True)
     for r in shown.itertuples(index=False):
         table_.add_row(
             escape(r.series), str(r.period_start)[:10], escape(r.statistic),
             _number(_finite(r.measured), ".4g"), "yes" if r.valid else "[red]no[/]",
+            f"{r.valid_pct:.1f}",
             _number(_finite(r.estimate), ".4g"),
             f"{_number(_finite(getattr(r, 'lower_' + level.replace('.', '_'))), '.4g')} – "
             f"{_number(_finite(getattr(r, 'upper_' + level.replace('.', '_'))), '.4g')}",
-            f"{r.capture_pct:.1f}", _number(_finite(r.filled_share), ".2f"),
+            f"{r.capture_pct:.1f}", _number(_finite(r.filled_pct), ".1f"),
         )
     return table_
 

@@ -1,23 +1,25 @@
-"""Period statistics with credible intervals: means, percentiles, exceedance counts.
+"""Period statistics with credible intervals: means, maxima, percentiles, exceedance counts.
 
 Each joint draw kept by ``fill`` (``fill_draws``) completes every series:
 observed cells keep their values, filled cells take the draw's values, cells
-not filled stay empty. A statistic (a period mean, a percentile, a count of
-exceedances) is computed from every completed draw, and its median and
-central credible interval over the draws are reported, so the interval
-carries the uncertainty of the filled cells and nothing else: with no
-missing cells every draw is the same and the interval has zero width.
+not filled stay empty. A statistic is computed from every completed draw,
+and its median and central credible interval over the draws are reported, so
+the interval carries the uncertainty of the filled cells and nothing else:
+with no missing cells every draw is the same and the interval has zero width.
 
-Beside each estimate: the figure from observed values alone, the data
-capture of the period, whether the period is valid by a capture rule
-evaluated on observed values only, and the share of the statistic that comes
-from filled cells (see docs/stats.md for each statistic's definition).
+A statistic runs over the period's time steps, its days (by their mean or
+maximum), its running means over a window, or its days by their maximum
+running mean (:mod:`gapband.windows`). Beside each estimate: the figure from
+observed values alone on the same basis, the data capture of the period,
+whether the period is valid by the validity rules (judged on observed values
+only) and the share of the statistic that comes from filled cells (see
+docs/stats.md for each statistic's definition).
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Literal
@@ -26,14 +28,21 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from gapband import flags, outputs
+from gapband import flags, outputs, windows
 from gapband.errors import InputError, UsageError
 from gapband.panel import fixed_duration, step_of
 
 Period = Literal["day", "month", "year"]
-Over = Literal["step", "day-mean", "day-max"]
+Over = Literal["step", "day-mean", "day-max", "running", "day-max-running"]
 PERIODS: dict[str, str] = {"day": "D", "month": "M", "year": "Y"}
-OVERS: tuple[str, ...] = ("step", "day-mean", "day-max")
+#: What a statistic runs over: time steps, days by their mean or maximum, running
+#: means over ``--running``, or days by the maximum of their running means.
+OVERS: tuple[str, ...] = ("step", "day-mean", "day-max", "running", "day-max-running")
+_DAY_OVERS = ("day-mean", "day-max", "day-max-running")
+_RUNNING_OVERS = ("running", "day-max-running")
+#: What a validity rule applies to: the units of a period, the sub-units of a day,
+#: the steps of a running window (``--min-capture day=18/24``).
+RULE_LEVELS: tuple[str, ...] = ("period", "day", "running")
 #: Shortest calendar length of each period: a record shorter than this holds none.
 _SHORTEST = {"day": pd.Timedelta(days=1), "month": pd.Timedelta(days=28),
              "year": pd.Timedelta(days=365)}
@@ -41,31 +50,54 @@ _SHORTEST = {"day": pd.Timedelta(days=1), "month": pd.Timedelta(days=28),
 _LONGEST = {"day": pd.Timedelta(days=1), "month": pd.Timedelta(days=31),
             "year": pd.Timedelta(days=366)}
 _DAY = pd.Timedelta(days=1)
+_HOUR = pd.Timedelta(hours=1)
 
-#: Default validity rule, percent of a period's expected steps observed: 75 %
-#: is 18 of 24 hourly values, the rule for 24-hour averages in US 40 CFR
-#: Part 50, Appendix N, section 3.0(c).
+#: Default validity rule, percent of a unit's sub-units valid: 75 % is 18 of 24
+#: hourly values, the rule for 24-hour averages in US 40 CFR Part 50, Appendix N,
+#: section 3.0(c).
 DEFAULT_MIN_CAPTURE = 75.0
 DEFAULT_LEVEL = 90.0
 
 
 @dataclass(frozen=True)
-class Statistic:
-    """One statistic asked for: a mean, a percentile, or a count of exceedances."""
+class Validity:
+    """Validity rules in percent.
 
-    kind: Literal["mean", "percentile", "exceedances"]
+    ``period``: of a period's units (steps, days or running means) valid;
+    ``day``: of a day's steps observed (or running means valid); ``running``:
+    of a running window's steps observed.
+    """
+
+    period: float = DEFAULT_MIN_CAPTURE
+    day: float = DEFAULT_MIN_CAPTURE
+    running: float = DEFAULT_MIN_CAPTURE
+
+
+@dataclass(frozen=True)
+class Statistic:
+    """One statistic asked for: a mean, a maximum, a percentile or a count of exceedances.
+
+    It runs over the units ``over``; ``window`` is the running window (``8h``) or empty.
+    """
+
+    kind: Literal["mean", "max", "percentile", "exceedances"]
+    over: Over = "step"
+    window: str = ""
     percentile: float | None = None
     threshold: float | None = None
-    over: Over | None = None
+
+    @property
+    def basis(self) -> str:
+        """The units' name: ``step``, ``day-mean``, ``running-8h``, ``day-max-running-8h``."""
+        return f"{self.over}-{self.window}" if self.window else self.over
 
     @property
     def label(self) -> str:
-        """A short unique name, e.g. ``mean``, ``p98``, ``day-mean > 50``."""
-        if self.kind == "mean":
-            return "mean"
-        if self.kind == "percentile":
-            return f"p{self.percentile:g}"
-        return f"{self.over} > {self.threshold:g}"
+        """A short unique name: ``mean``, ``p98``, ``step > 200``, ``p90.4 of day-mean``."""
+        if self.kind == "exceedances":
+            return f"{self.basis} > {self.threshold:g}"
+        name = f"p{self.percentile:g}" if self.kind == "percentile" else self.kind
+        return name if self.over == "step" else f"{name} of {self.basis}"
 
 
 def period_stats(
@@ -73,10 +105,12 @@ def period_stats(
     *,
     period: Period = "month",
     mean: bool = False,
+    maximum: bool = False,
     percentiles: Sequence[float] = (),
     exceed: Sequence[float | str] = (),
-    over: Over = "day-mean",
-    min_capture: float | str = DEFAULT_MIN_CAPTURE,
+    over: Over | Sequence[Over] = "step",
+    running: str | None = None,
+    min_capture: float | str | Sequence[float | str] = DEFAULT_MIN_CAPTURE,
     level: float = DEFAULT_LEVEL,
 ) -> xr.Dataset:
     """Statistics per series and calendar period, from every joint draw of a fill.
@@ -89,21 +123,26 @@ def period_stats(
         dims (fill_draw, missing_cell) whenever a cell was filled.
     period : {"day", "month", "year"}
         Calendar periods (UTC when the input carried zones).
-    mean : bool
-        The period mean. The default when nothing else is asked for.
+    mean, maximum : bool
+        The mean and the maximum of the period's units. The mean is the
+        default when nothing else is asked for.
     percentiles : sequence of float
-        Percentiles in (0, 100] of the period's values (linear interpolation
+        Percentiles in (0, 100] of the period's units (linear interpolation
         between order statistics, numpy's and pandas' default).
     exceed : sequence of float
-        Limit values: count the ``over`` values in the period greater than each.
-    over : {"step", "day-mean", "day-max"}
-        What an exceedance counts: single time steps, or days by their mean
-        or maximum (days of the completed series; a day whose values are all
-        missing and unfilled does not count).
-    min_capture : float or "a/b"
-        Validity rule: a period (and, for day aggregates, a day) is valid
-        when at least this percentage of its expected time steps is
-        observed; "18/24" means 18 of 24. Evaluated on observed values only.
+        Limit values: count the period's units greater than each.
+    over : str or sequence of str
+        The units every statistic runs over, each of ``OVERS``: "step" (the
+        time steps), "day-mean", "day-max" (days by their mean or maximum),
+        "running" (the running mean over ``running`` ending at each step),
+        "day-max-running" (days by their largest running mean).
+    running : str, optional
+        The running window as a duration, a whole number of grid steps
+        (e.g. "8h"); needed by, and only by, the running units.
+    min_capture : float, str or sequence of them
+        Validity rules, judged on observed values only: "75" or "18/24" sets
+        every rule; "period=90", "day=18/24", "running=6/8" set one (see
+        :func:`parse_min_capture`).
     level : float
         Central credible interval level in percent.
 
@@ -112,32 +151,37 @@ def period_stats(
     Dataset
         Dims ("statistic", "series", "period"): ``estimate`` (median over
         draws), ``lower``, ``upper``, ``measured`` (from observed values
-        alone; exceedances count valid days only), ``valid``, ``filled_share``;
-        dims ("series", "period"): ``n_expected``, ``n_observed``,
-        ``n_filled``, ``capture_pct``, ``with_fills_pct``, ``in_record_pct``.
-        Coordinates ``period`` (start) and ``period_end`` (exclusive).
+        alone, over the same valid units), ``valid``, ``valid_pct`` (valid
+        units over the period's expected units, %), ``filled_pct``; dims
+        ("series", "period"): ``n_expected``, ``n_observed``, ``n_filled``,
+        ``capture_pct``, ``with_fills_pct``, ``in_record_pct``. Coordinates
+        ``period`` (start) and ``period_end`` (exclusive).
 
     Raises
     ------
     UsageError
-        Unknown period or ``over``, a threshold that is not a number, a
-        percentile or level out of range, a record shorter than one period,
-        a period shorter than the grid step.
+        Unknown period or units, a threshold that is not a number, a
+        percentile, rule, window or level out of range, a record shorter
+        than one period, a period shorter than the grid step.
     InputError
         ``result`` is not a fill, or holds filled cells without joint draws.
     """
-    statistics = _statistics(mean, percentiles, exceed, over)
-    rule = parse_min_capture(min_capture)
+    overs = _overs(over)
+    rules = parse_min_capture(min_capture)
     if not (isinstance(level, int | float) and 0 < level < 100):
         raise UsageError(f"--level {level!r} must be a percentage strictly between 0 and 100")
     _check_result(result)
+    width, window = _window(running, overs, result)
+    statistics = _statistics(mean, maximum, percentiles, exceed, overs, window)
     times = pd.DatetimeIndex(result["time"].values)
     grid = Grid(times, result.attrs.get("step", ""), period, result)
-    any_day = any(s.over in ("day-mean", "day-max") for s in statistics)
-    if any_day and step_of(result) > _DAY:
-        raise UsageError(f"--over day-mean and day-max need steps of a day or less; the grid "
-                         f"step is {result.attrs['step']!r}: use --over step")
-    days = Grid(times, result.attrs["step"], "day", result) if any_day else None
+    by_day = [o for o in overs if o in _DAY_OVERS]
+    if by_day and step_of(result) > _DAY:
+        raise UsageError(f"--over {by_day[0]} needs steps of a day or less; the grid step is "
+                         f"{result.attrs['step']!r}: use --over step")
+    days = Grid(times, result.attrs["step"], "day", result) if by_day else None
+    by_days = grid.days_of(days) if days is not None else None
+    to_period = {o: by_days if o in _DAY_OVERS else (grid.first, grid.expected) for o in overs}
 
     value = result["value"].transpose("series", "time").values
     flag = result["fill_flag"].transpose("series", "time").values
@@ -147,25 +191,27 @@ def period_stats(
     n_series, n_periods = value.shape[0], grid.starts.size
     shape = (len(statistics), n_series, n_periods)
     out = {name: np.full(shape, np.nan) for name in ("estimate", "lower", "upper", "measured",
-                                                       "filled_share")}
+                                                       "filled_pct", "valid_pct")}
     valid = np.zeros(shape, dtype=bool)
     n_observed = grid.count(observed)
     n_filled = grid.count(filled)
-    period_valid = grid.valid(n_observed, rule)
     probs = (0.5, 0.5 - level / 200, 0.5 + level / 200)
     for n in range(n_series):
         draws = complete(n)
+        units = _units(overs, draws, value[n], filled[n], days, width, rules)
         for i, stat in enumerate(statistics):
-            per_draw, share, measured = _compute(stat, draws, value[n], filled[n], grid, days,
-                                                 rule)
+            first, expected = to_period[stat.over]
+            per_draw, share, measured = _compute(stat, units[stat.over], first)
             with np.errstate(all="ignore"):
                 q = np.quantile(per_draw, probs, axis=0)
             out["estimate"][i, n], out["lower"][i, n], out["upper"][i, n] = q
-            out["filled_share"][i, n] = share
+            out["filled_pct"][i, n] = 100.0 * share
             out["measured"][i, n] = measured
-            valid[i, n] = period_valid[n]
+            n_valid = np.add.reduceat(units[stat.over].valid.astype("int64"), first)
+            out["valid_pct"][i, n] = 100.0 * n_valid / expected
+            valid[i, n] = n_valid >= windows.needed(rules.period, expected)
     expected = np.broadcast_to(grid.expected, (n_series, n_periods))
-    units = result["value"].attrs.get("units")
+    units_attr = result["value"].attrs.get("units")
     dims3, dims2 = ("statistic", "series", "period"), ("series", "period")
     data = {name: (dims3, array) for name, array in out.items()} | {
         "valid": (dims3, valid),
@@ -186,12 +232,16 @@ def period_stats(
                "method": result.attrs.get("gapband_method", ""),
                "seed": int(result.attrs.get("gapband_seed", -1)),
                "calibrated_cells": "gapband_calibration" in result.attrs,
-               "period": period, "level": float(level), "min_capture_pct": rule,
-               "draws": int(result.sizes.get("fill_draw", 0)), "units": units or "",
+               "period": period, "level": float(level),
+               "min_capture_pct": rules.period, "day_capture_pct": rules.day,
+               "running_capture_pct": rules.running, "running": window,
+               "running_steps": width, "step": result.attrs.get("step", ""),
+               "draws": int(result.sizes.get("fill_draw", 0)), "units": units_attr or "",
                "kinds": [s.kind for s in statistics],
                "percentiles": [s.percentile for s in statistics],
                "thresholds": [s.threshold for s in statistics],
-               "overs": [s.over for s in statistics]},
+               "overs": [s.over for s in statistics],
+               "windows": [s.window for s in statistics]},
     )
 
 
@@ -199,9 +249,9 @@ def table(stats: xr.Dataset) -> pd.DataFrame:
     """The statistics as a long table, one row per series, period and statistic.
 
     Columns: ``series, period_start, period_end, statistic, kind, percentile,
-    threshold, over, estimate, lower_<L>, upper_<L>, measured, valid,
-    capture_pct, with_fills_pct, in_record_pct, filled_share, n_expected,
-    n_observed, n_filled, units``.
+    threshold, over, window, estimate, lower_<L>, upper_<L>, measured, valid,
+    valid_pct, capture_pct, with_fills_pct, in_record_pct, filled_pct,
+    n_expected, n_observed, n_filled, units``.
     """
     level = f"{stats.attrs['level']:g}".replace(".", "_")
     frames = []
@@ -216,13 +266,15 @@ def table(stats: xr.Dataset) -> pd.DataFrame:
             "percentile": stats.attrs["percentiles"][i],
             "threshold": stats.attrs["thresholds"][i],
             "over": stats.attrs["overs"][i],
+            "window": stats.attrs["windows"][i],
             "estimate": one["estimate"].values.ravel(),
             f"lower_{level}": one["lower"].values.ravel(),
             f"upper_{level}": one["upper"].values.ravel(),
             "measured": one["measured"].values.ravel(),
             "valid": one["valid"].values.ravel(),
+            "valid_pct": one["valid_pct"].values.ravel(),
             **{name: one[name].values.ravel() for name in (
-                "capture_pct", "with_fills_pct", "in_record_pct", "filled_share",
+                "capture_pct", "with_fills_pct", "in_record_pct", "filled_pct",
                 "n_expected", "n_observed", "n_filled")},
             "units": stats.attrs["units"],
         })
@@ -237,7 +289,7 @@ def table(stats: xr.Dataset) -> pd.DataFrame:
 def write(stats: xr.Dataset, out_dir: str | Path, *, overwrite: bool = False) -> list[Path]:
     """Write ``stats-<period>.csv`` and ``stats-<period>.json`` into ``out_dir`` atomically.
 
-    The CSV is :func:`table`; the JSON holds the settings, the rule in words,
+    The CSV is :func:`table`; the JSON holds the settings, the rules in words,
     the cautions and the same rows.
 
     Raises
@@ -256,11 +308,11 @@ def write(stats: xr.Dataset, out_dir: str | Path, *, overwrite: bool = False) ->
 
 
 def document(stats: xr.Dataset, rows: pd.DataFrame) -> dict:
-    """The JSON form of the statistics: settings, rule, cautions and rows."""
+    """The JSON form of the statistics: settings, rules, cautions and rows."""
     attrs = stats.attrs
     return {
         "format": "gapband stats",
-        "format_version": 1,
+        "format_version": 2,
         "source": attrs["source"],
         "input_sha256": attrs["input_sha256"],
         "method": attrs["method"],
@@ -269,12 +321,17 @@ def document(stats: xr.Dataset, rows: pd.DataFrame) -> dict:
         "level": attrs["level"],
         "draws": attrs["draws"],
         "units": attrs["units"],
-        "validity_rule": rule_text(attrs["min_capture_pct"], attrs["period"]),
-        "min_capture_pct": attrs["min_capture_pct"],
+        "running": attrs["running"],
+        "validity_rule": rule_text(stats),
+        "min_capture_pct": {"period": attrs["min_capture_pct"],
+                            "day": attrs["day_capture_pct"],
+                            "running": attrs["running_capture_pct"]},
         "notes": [
             "estimate, lower and upper are the median and central credible interval over "
             "the joint draws kept by gapband fill; observed cells are fixed in every draw",
-            "measured is the same statistic from observed values alone",
+            "measured is the same statistic from observed values alone, over the same "
+            "valid days and running means as the estimate",
+            "filled_pct is the share of the statistic that comes from filled cells, in %",
             *(["the fill's cell intervals were widened by --calibration; the joint draws and "
                "so these intervals are not"] if attrs["calibrated_cells"] else []),
             "filled values are estimates, not measurements: whether they may count toward "
@@ -284,26 +341,73 @@ def document(stats: xr.Dataset, rows: pd.DataFrame) -> dict:
     }
 
 
-def rule_text(min_capture_pct: float, period: str) -> str:
-    """The validity rule in words, citing its source when it is the 18-of-24 rule."""
-    text = (f"a {period} (and, for day aggregates, a day) is valid when at least "
-            f"{min_capture_pct:g} % of its expected time steps are observed; filled cells "
-            "do not count toward validity")
-    if math.isclose(min_capture_pct, 75.0):
+def rule_text(stats: xr.Dataset) -> str:
+    """The validity rules the statistics used, in words, citing the 18-of-24 rule's source."""
+    attrs = stats.attrs
+    period, overs = attrs["period"], set(attrs["overs"])
+    whole, day = attrs["min_capture_pct"], attrs["day_capture_pct"]
+    parts = []
+    if "step" in overs:
+        parts.append(f"for statistics of time steps a {period} is valid when at least "
+                     f"{whole:g} % of its expected time steps are observed")
+    if overs & {"day-mean", "day-max"}:
+        parts.append(f"a day is valid when at least {day:g} % of its expected time steps are "
+                     "observed")
+    if overs & set(_RUNNING_OVERS):
+        parts.append(f"a running mean over {attrs['running']} is valid when at least "
+                     f"{attrs['running_capture_pct']:g} % of its {attrs['running_steps']} "
+                     "time steps are observed")
+    if "running" in overs:
+        parts.append(f"for statistics of running means a {period} is valid when at least "
+                     f"{whole:g} % of its running means are valid")
+    if "day-max-running" in overs:
+        parts.append(f"for the daily maximum running mean a day is valid when at least "
+                     f"{day:g} % of its running means are valid")
+    if overs & set(_DAY_OVERS) and period != "day":
+        parts.append(f"for statistics of days a {period} is valid when at least {whole:g} % "
+                     "of its days are valid")
+    text = "; ".join(parts) + "; filled cells never make anything valid"
+    if overs - {"step"}:
+        text += ("; invalid days and running means are left out of the estimate and the "
+                 "measured figure alike")
+    day_of_steps = (overs & {"day-mean", "day-max"} and math.isclose(day, 75.0)) or (
+        "step" in overs and period == "day" and math.isclose(whole, 75.0))
+    hourly = fixed_duration(pd.tseries.frequencies.to_offset(attrs["step"])) == _HOUR
+    if day_of_steps and hourly:
         text += ("; 75 % of an hourly day is 18 of 24 values, the rule for 24-hour averages "
                  "in US 40 CFR Part 50, Appendix N, section 3.0(c)")
     return text
 
 
-def parse_min_capture(given: float | str) -> float:
-    """A validity rule as a percentage: ``75``, ``"75"`` or ``"18/24"``.
+def parse_min_capture(given: float | str | Sequence[float | str]) -> Validity:
+    """Validity rules from ``--min-capture`` values, alone or in a sequence.
+
+    ``75`` or ``"18/24"`` sets every rule; ``"day=18/24"``, ``"running=6/8"``,
+    ``"period=90"`` set one. A rule not named takes the plain value, or 75 %
+    when there is none.
 
     Raises
     ------
     UsageError
-        Not a number or fraction in [0, 100] %.
+        Not a number or fraction in [0, 100] %, an unknown rule name, a rule given twice.
     """
-    text = str(given).strip()
+    items = [given] if isinstance(given, str | int | float) else list(given)
+    found: dict[str, float] = {}
+    for item in items:
+        name, sep, amount = str(item).strip().rpartition("=")
+        name = name.strip() if sep else "every"
+        if sep and name not in RULE_LEVELS:
+            raise UsageError(f"--min-capture {item!r}: {name!r} is not one of "
+                             f"{', '.join(RULE_LEVELS)}; write e.g. day=18/24")
+        if name in found:
+            raise UsageError(f"--min-capture gives the {name} rule twice; give it once")
+        found[name] = _percent(item, amount)
+    base = found.get("every", DEFAULT_MIN_CAPTURE)
+    return Validity(**{name: found.get(name, base) for name in RULE_LEVELS})
+
+
+def _percent(item: object, text: str) -> float:
+    """A percentage from ``"75"`` or a fraction such as ``"18/24"``."""
     try:
         if "/" in text:
             part, whole = (float(x) for x in text.split("/"))
@@ -312,9 +416,10 @@ def parse_min_capture(given: float | str) -> float:
             pct = float(text)
     except (ValueError, ZeroDivisionError):
         pct = math.nan
-    if isinstance(given, bool) or not (0 <= pct <= 100):
-        raise UsageError(f"--min-capture {given!r} must be a percentage in 0-100 (e.g. 75) "
-                         "or a fraction of steps such as 18/24")
+    if isinstance(item, bool) or not (0 <= pct <= 100):
+        raise UsageError(f"--min-capture {item!r} must be a percentage in 0-100 (e.g. 75) "
+                         "or a fraction of steps such as 18/24, optionally after period=, "
+                         "day= or running=")
     return pct
 
 
@@ -370,21 +475,10 @@ class Grid:
         """Cells of ``mask`` (series, time) in each period: (series, period)."""
         return np.add.reduceat(mask.astype("int64"), self.first, axis=-1)
 
-    def valid(self, n_observed: np.ndarray, rule_pct: float) -> np.ndarray:
-        """Periods observed at least ``rule_pct`` % of their expected steps."""
-        needed = np.ceil(rule_pct / 100 * self.expected - 1e-9)
-        return n_observed >= needed
-
-    def sums(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """NaN-skipping sums and counts of ``x`` (..., time) per period: (..., period)."""
-        present = ~np.isnan(x)
-        total = np.add.reduceat(np.where(present, x, 0.0), self.first, axis=-1)
-        return total, np.add.reduceat(present.astype("int64"), self.first, axis=-1)
-
-    def segments(self) -> list[slice]:
-        """The time slice of each period."""
-        bounds = np.append(self.first, self.first[-1] + self.in_record[-1])
-        return [slice(a, b) for a, b in zip(bounds[:-1], bounds[1:], strict=True)]
+    def days_of(self, days: Grid) -> tuple[np.ndarray, np.ndarray]:
+        """Each period's first day in ``days`` and the days of the whole calendar period."""
+        whole = (self.ends - self.starts) // np.timedelta64(1, "D")
+        return np.searchsorted(days.starts, self.starts), whole.astype("int64")
 
 
 def _expected_steps(times: pd.DatetimeIndex, step: str, starts: np.ndarray,
@@ -403,11 +497,53 @@ def _expected_steps(times: pd.DatetimeIndex, step: str, starts: np.ndarray,
                      for a, b in zip(starts, ends, strict=True)], dtype="int64")
 
 
-def _statistics(mean: bool, percentiles: Sequence[float], exceed: Sequence[float | str],
-                over: str) -> list[Statistic]:
-    if over not in OVERS:
-        raise UsageError(f"--over {over!r} is not one of {', '.join(OVERS)}")
-    chosen = [Statistic("mean")] if mean or not (percentiles or exceed) else []
+def _overs(over: str | Sequence[str]) -> list[str]:
+    overs = [over] if isinstance(over, str) else list(over) or ["step"]
+    for name in overs:
+        if name not in OVERS:
+            raise UsageError(f"--over {name!r} is not one of {', '.join(OVERS)}")
+    if len(set(overs)) != len(overs):
+        raise UsageError(f"--over is given twice with the same value ({', '.join(overs)}); "
+                         "give each once")
+    return overs
+
+
+def _window(running: str | None, overs: list[str], result: xr.Dataset) -> tuple[int, str]:
+    """The running window in grid steps and as text (``8h``); (0, "") when there is none."""
+    users = [o for o in overs if o in _RUNNING_OVERS]
+    if running is None:
+        if users:
+            raise UsageError(f"--over {users[0]} needs a window: add --running, e.g. 8h")
+        return 0, ""
+    if not users:
+        raise UsageError(f"--running {running!r} is used only by --over running or "
+                         "day-max-running; add one of them or drop --running")
+    step = fixed_duration(pd.tseries.frequencies.to_offset(result.attrs["step"]))
+    if step is None:
+        raise UsageError(f"--running needs a grid of fixed steps; the grid step "
+                         f"{result.attrs['step']!r} is a calendar one: use --over step")
+    try:
+        width = pd.Timedelta(str(running).strip())
+    except ValueError:
+        width = pd.NaT
+    if pd.isna(width) or width < step or width % step != pd.Timedelta(0):
+        raise UsageError(f"--running {running!r} must be a duration of whole grid steps "
+                         f"({_duration_text(step)} each), e.g. --running 8h")
+    return int(width // step), _duration_text(width)
+
+
+def _duration_text(duration: pd.Timedelta) -> str:
+    """A duration in the largest whole unit among h, min and s: ``8h``, ``90min``."""
+    for unit, size in (("h", pd.Timedelta(hours=1)), ("min", pd.Timedelta(minutes=1))):
+        if duration % size == pd.Timedelta(0):
+            return f"{duration // size}{unit}"
+    return f"{duration.total_seconds():g}s"
+
+
+def _statistics(mean: bool, maximum: bool, percentiles: Sequence[float],
+                exceed: Sequence[float | str], overs: list[str],
+                window: str) -> list[Statistic]:
+    levels = []
     for given in percentiles:
         try:
             p = math.nan if isinstance(given, bool) else float(given)
@@ -415,9 +551,16 @@ def _statistics(mean: bool, percentiles: Sequence[float], exceed: Sequence[float
             p = math.nan
         if not 0 < p <= 100:
             raise UsageError(f"--percentile {given!r} must be a number in (0, 100]")
-        chosen.append(Statistic("percentile", percentile=p))
-    chosen += [Statistic("exceedances", threshold=parse_threshold(v), over=over)
-               for v in exceed]
+        levels.append(p)
+    limits = [parse_threshold(v) for v in exceed]
+    kinds = [k for k, asked in (("mean", mean or not (maximum or levels or limits)),
+                                ("max", maximum)) if asked]
+    chosen = []
+    for over in overs:
+        win = window if over in _RUNNING_OVERS else ""
+        chosen += [Statistic(kind, over, win) for kind in kinds]
+        chosen += [Statistic("percentile", over, win, percentile=p) for p in levels]
+        chosen += [Statistic("exceedances", over, win, threshold=t) for t in limits]
     labels = [s.label for s in chosen]
     if len(set(labels)) != len(labels):
         raise UsageError(f"a statistic is asked for twice ({', '.join(labels)}); give each once")
@@ -457,94 +600,87 @@ def _completed(result: xr.Dataset, value: np.ndarray, flag: np.ndarray):
     return complete
 
 
-def _compute(stat: Statistic, draws: np.ndarray, value: np.ndarray, filled: np.ndarray,
-             grid: Grid, days: Grid | None,
-             rule: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _units(overs: list[str], draws: np.ndarray, value: np.ndarray, filled: np.ndarray,
+           days: Grid | None, width: int, rules: Validity) -> dict[str, windows.Units]:
+    """One series' units of each kind asked for (steps, days, running means), with validity."""
+    units = {}
+    if "step" in overs:
+        units["step"] = windows.steps(draws, value, filled)
+    for over in ("day-mean", "day-max"):
+        if over in overs:
+            units[over] = windows.days(over.removeprefix("day-"), draws, value, filled,
+                                       days.first, days.expected, rules.day)
+    if set(overs) & set(_RUNNING_OVERS):
+        means = windows.running(draws, value, filled, width, rules.running)
+        units["running"] = means
+        if "day-max-running" in overs:
+            units["day-max-running"] = windows.day_max(means, days.first, days.expected,
+                                                       rules.day)
+    return units
+
+
+def _compute(stat: Statistic, units: windows.Units,
+             first: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """One statistic of one series: per draw (draws, period), filled share and measured."""
     if stat.kind == "mean":
-        total, count = grid.sums(draws)
-        obs_total, obs_count = grid.sums(value)
-        n_filled = np.add.reduceat(filled.astype("int64"), grid.first)
-        with np.errstate(all="ignore"):
-            return (total / np.where(count, count, np.nan), n_filled / (n_filled + obs_count),
-                    obs_total / np.where(obs_count, obs_count, np.nan))
-    if stat.kind == "percentile":
-        return _percentile(stat.percentile, draws, value, filled, grid)
-    return _exceedances(stat, draws, value, filled, grid, days, rule)
+        present = ~np.isnan(units.values[0])
+        share = windows.segment_mean(np.where(present, units.filled, np.nan)[None, :], first)
+        return (windows.segment_mean(units.values, first), share[0],
+                windows.segment_mean(units.measured[None, :], first)[0])
+    if stat.kind == "exceedances":
+        return _exceedances(stat.threshold, units, first)
+    return _percentile(100.0 if stat.kind == "max" else stat.percentile, units, first)
 
 
-def _percentile(p: float, draws: np.ndarray, value: np.ndarray, filled: np.ndarray,
-                grid: Grid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Linear-interpolation percentile per draw and period, and the filled cells' weight in it."""
-    per_draw = np.full((draws.shape[0], grid.starts.size), np.nan)
-    share = np.full(grid.starts.size, np.nan)
-    measured = np.full(grid.starts.size, np.nan)
-    for j, seg in enumerate(grid.segments()):
-        present = ~np.isnan(draws[0, seg])
-        if not present.any():
-            continue
-        block, from_fill = draws[:, seg][:, present], filled[seg][present]
-        order = np.argsort(block, axis=1, kind="stable")
-        ranked = np.take_along_axis(block, order, axis=1)
-        position = (block.shape[1] - 1) * p / 100
+def _percentile(p: float, units: windows.Units,
+                first: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Linear-interpolation percentile per draw and period, and the filled units' weight in it."""
+    n_periods = first.size
+    per_draw = np.full((units.values.shape[0], n_periods), np.nan)
+    share, measured = np.full(n_periods, np.nan), np.full(n_periods, np.nan)
+    for periods, idx in _same_size(~np.isnan(units.values[0]), first):
+        block, n = units.values[:, idx], idx.shape[1]
+        position = (n - 1) * p / 100
         lo = int(np.floor(position))
-        hi, frac = min(lo + 1, block.shape[1] - 1), position - lo
-        per_draw[:, j] = ranked[:, lo] + frac * (ranked[:, hi] - ranked[:, lo])
-        weight = (1 - frac) * from_fill[order[:, lo]] + frac * from_fill[order[:, hi]]
-        share[j] = weight.mean()
-        seen = value[seg][~np.isnan(value[seg])]
-        if seen.size:
-            measured[j] = np.quantile(seen, p / 100)
+        hi, frac = min(lo + 1, n - 1), position - lo
+        # Only the two order statistics are needed: the largest, or a partition, never a sort.
+        if lo == n - 1:
+            order = np.repeat(np.argmax(block, axis=-1)[..., None], 2, axis=-1)
+        else:
+            order = np.argpartition(block, sorted({lo, hi}), axis=-1)[..., [lo, hi]]
+        low, high = np.moveaxis(np.take_along_axis(block, order, axis=-1), -1, 0)
+        per_draw[:, periods] = low + frac * (high - low)
+        from_fill = np.take_along_axis(np.broadcast_to(units.filled[idx], block.shape), order,
+                                       axis=-1)
+        share[periods] = ((1 - frac) * from_fill[..., 0] + frac * from_fill[..., 1]).mean(axis=0)
+    for periods, idx in _same_size(~np.isnan(units.measured), first):
+        measured[periods] = np.quantile(units.measured[idx], p / 100, axis=-1)
     return per_draw, share, measured
 
 
-def _exceedances(stat: Statistic, draws: np.ndarray, value: np.ndarray, filled: np.ndarray,
-                 grid: Grid, days: Grid | None,
-                 rule: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Counts per draw and period of values (steps, or days by mean or max) above the limit."""
-    if stat.over == "step":
-        units, unit_filled = draws, filled.astype(float)[None, :]
-        measured_units = value
-        to_period = grid.first
-    else:
-        units, unit_filled, measured_units = _day_values(stat.over, draws, value, filled,
-                                                         days, rule)
-        to_period = np.searchsorted(days.starts, grid.starts)
+def _same_size(present: np.ndarray,
+               first: np.ndarray) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+    """Periods grouped by their count of present units: (periods, unit indices (period, n))."""
+    counts = np.add.reduceat(present.astype("int64"), first)
+    where = np.flatnonzero(present)
+    owner = np.repeat(np.arange(first.size), counts)
+    for n in np.unique(counts[counts > 0]):
+        periods = np.flatnonzero(counts == n)
+        yield periods, where[np.isin(owner, periods)].reshape(periods.size, n)
+
+
+def _exceedances(threshold: float, units: windows.Units,
+                 first: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Counts per draw and period of units above the limit, and the filled share of them."""
     with np.errstate(invalid="ignore"):
-        above = units > stat.threshold
-        seen_above = measured_units > stat.threshold
-    counts = np.add.reduceat(above.astype("int64"), to_period, axis=-1).astype(float)
-    weighted = np.add.reduceat(above * unit_filled, to_period, axis=-1)
+        above = units.values > threshold
+        seen_above = units.measured > threshold
+    counts = np.add.reduceat(above.astype("int64"), first, axis=-1).astype(float)
+    weighted = np.add.reduceat(above * np.nan_to_num(units.filled), first, axis=-1)
     with np.errstate(all="ignore"):
         # Mean over the draws with at least one exceedance; NaN when no draw has one.
         ratio = np.where(counts > 0, weighted / counts, 0.0)
         share = ratio.sum(axis=0) / np.where((counts > 0).any(axis=0), (counts > 0).sum(axis=0),
                                              np.nan)
-    measured = np.add.reduceat(seen_above.astype("int64"), to_period).astype(float)
+    measured = np.add.reduceat(seen_above.astype("int64"), first).astype(float)
     return counts, share, measured
-
-
-def _day_values(over: str, draws: np.ndarray, value: np.ndarray, filled: np.ndarray,
-                days: Grid, rule: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Day means or maxima per draw, each day's filled share, and the valid days' measured ones."""
-    observed = ~np.isnan(value)
-    valid = days.valid(days.count(observed[None, :])[0], rule)
-    if over == "day-mean":
-        total, count = days.sums(draws)
-        obs_total, obs_count = days.sums(value)
-        with np.errstate(all="ignore"):
-            per_day = total / np.where(count, count, np.nan)
-            seen = obs_total / np.where(obs_count, obs_count, np.nan)
-    else:
-        per_day = _segment_max(draws, days)
-        seen = _segment_max(value[None, :], days)[0]
-    present = days.count(~np.isnan(draws[:1]))[0]
-    with np.errstate(all="ignore"):
-        share = days.count(filled[None, :])[0] / present
-    return per_day, np.nan_to_num(share)[None, :], np.where(valid, seen, np.nan)
-
-
-def _segment_max(x: np.ndarray, grid: Grid) -> np.ndarray:
-    filled_in = np.where(np.isnan(x), -np.inf, x)
-    top = np.maximum.reduceat(filled_in, grid.first, axis=-1)
-    return np.where(np.isinf(top), np.nan, top)

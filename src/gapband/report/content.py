@@ -319,12 +319,12 @@ def period_statistics(result: xr.Dataset, period: str | None) -> dict:
     level = f"{computed.attrs['level']:g}"
     return {
         "period": period, "level": level, "note": "",
-        "rule": stats.rule_text(computed.attrs["min_capture_pct"], period),
+        "rule": stats.rule_text(computed),
         "rows": [{"series": r.series, "period": _day(r.period_start), "measured": r.measured,
                   "estimate": r.estimate, "lower": getattr(r, f"lower_{level}"),
                   "upper": getattr(r, f"upper_{level}"), "valid": bool(r.valid),
                   "capture": r.capture_pct, "in_record": r.in_record_pct,
-                  "filled_share": r.filled_share}
+                  "filled_pct": r.filled_pct}
                  for r in rows.itertuples(index=False)],
     }
 
