@@ -201,7 +201,6 @@ def holdout(report: dict, input_sha256: str | None) -> dict:
     coverage = {name: o["coverage"] for name, o in overall.items() if o.get("coverage")}
     pit = {name: counts for name, counts in report.get("pit_histogram", {}).items()
            if name != "bins"}
-    gapband = report["scores"].get("gapband", {})
     return {
         "settings": settings,
         "same_input": report.get("input_sha256") == input_sha256,
@@ -209,12 +208,30 @@ def holdout(report: dict, input_sha256: str | None) -> dict:
         "levels": levels,
         "coverage": coverage,
         "scores": overall,
-        "by_gap_length": gapband.get("gap_length", {}),
+        "by_gap_length": _by_gap_length(report),
+        "evidence": report["evidence"],
         "widening": report["widening"],
         "reliability": figures.reliability(coverage) if coverage else None,
         "pit": figures.pit(pit) if pit else None,
         "bars": figures.score_bars(overall),
     }
+
+
+def _by_gap_length(report: dict) -> list[dict]:
+    """Rows of the evidence-by-gap-length table: buckets with real gaps or hidden cells."""
+    rows = []
+    for label, record in report["evidence"]["buckets"].items():
+        if not record["real_cells"] and not record["hidden_cells"]:
+            continue
+        scored = {name: block["gap_length"].get(label) for name, block in
+                  report["scores"].items()}
+        rows.append({
+            "bucket": label, **record,
+            "coverage": (scored.get("gapband") or {}).get("coverage") or {},
+            "score": {name: s["crps"] if s["crps"] is not None else s["mae"]
+                      for name, s in scored.items() if s is not None},
+        })
+    return rows
 
 
 def _stamp(t: np.datetime64) -> str:
