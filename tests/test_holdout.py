@@ -462,3 +462,23 @@ def test_on_real_hourly_weather_gapband_beats_linear_mae_and_kalman_crps(record_
     record_property("widening_factors", report["widening"]["factors"])
     assert overall["gapband"]["mae"] < overall["linear"]["mae"]
     assert overall["gapband"]["crps"] < overall["kalman"]["crps"]
+
+
+def test_a_bucket_with_real_gaps_and_no_hidden_cell_is_reported_untested():
+    values = np.ones((2, 600))
+    values[0, 100:300] = np.nan  # an outage of 200 steps: bucket >168
+    values[1, 50:53] = np.nan    # a gap of 3: bucket 2-6
+    panel = make_panel(values, ["a", "b"],
+                       pd.date_range("2000-01-01", periods=600, freq="h"), "h")
+    real = holdout._real_gaps(panel, min_observed=10)
+    assert real[">168"] == {"runs": 1, "cells": 200, "longest": 200}
+    # as if the holdout had scored 150 cells in gaps of 3 steps and none longer
+    found = holdout.evidence(real, calibration.bucket_of(np.full(150, 3)),
+                             np.array([0, 50, 0, 0, 0]), 3, repeats=1, repeats_run=1)
+    assert found["untested"] == [">168"]
+    assert found["buckets"][">168"] == {"real_gaps": 1, "real_cells": 200, "hidden_runs": 0,
+                                        "hidden_cells": 0, "status": "untested"}
+    assert found["buckets"]["2-6"]["status"] == "tested"
+    assert found["buckets"]["1"]["status"] == "no gaps"
+    assert found["longest_real_steps"] == 200 and found["longest_tested_steps"] == 3
+    assert found["note"] is None

@@ -15,7 +15,7 @@ import pandas as pd
 import pytest
 from click.testing import CliRunner
 
-from gapband import calibration, filling, holdout, parallel, spec
+from gapband import calibration, filling, flags, holdout, outputs, parallel, spec
 from gapband.cli import cli
 from gapband.errors import FitError, UsageError
 from gapband.panel import make_panel
@@ -205,3 +205,33 @@ def test_holdout_command_refuses_two_clusters(files, tmp_path):
     assert done.exit_code == 2
     assert "give --workers (a new local cluster) or --scheduler" in done.output
     assert not (tmp_path / "o").exists()
+
+
+def test_a_block_fill_widens_and_flags_by_the_whole_panels_gap_lengths(panel, plan, tmp_path):
+    values = panel["value"].values.copy()
+    values[0, 150:340] = np.nan  # 190 steps (>168); window g00-w00 ends at 264, seeing 114
+    gappy = panel.copy(data={"value": values})
+    wide = dict.fromkeys(calibration.BUCKETS, 1.0) | {">168": 3.0}
+    path = tmp_path / "holdout.json"
+    outputs.write_json({
+        "format": calibration.CALIBRATION_FORMAT,
+        "format_version": calibration.CALIBRATION_VERSION,
+        "input_sha256": gappy.attrs.get("input_sha256"),
+        "settings": {"method": "gibbs", "scheme": "gaps", "transform": TINY.transform,
+                     "spec_detail": TINY.to_dict(), "spec_sha256": calibration.spec_sha256(TINY)},
+        "evidence": {"longest_tested_steps": 100},
+        "widening": {"factors": {level: wide for level in LEVELS}}}, path)
+    options = dataclasses.replace(
+        OPTIONS, rules=filling.FlagRules(accept_unconverged=True), keep_draws=0)
+    plain, _ = parallel.fill_blocks(gappy, plan, model=TINY, options=options)
+    widened, summary = parallel.fill_blocks(gappy, plan, model=TINY, options=options,
+                                            calibration=path)
+    assert summary["calibration"]["factors"]["90"][">168"] == 3.0
+    core = slice(150, 192)  # in the core of g00-w00, whose window cuts the gap to 114 steps
+    median = plain["fill_median"].values[0, core]
+    np.testing.assert_allclose(widened["upper_90"].values[0, core] - median,
+                               3.0 * (plain["upper_90"].values[0, core] - median), rtol=1e-9)
+    flag = widened["fill_flag"].values
+    assert (flag[0, 150:340] == flags.FILLED_UNCERTAIN).all()  # longer than the 100 tested
+    short = np.isnan(values) & (filling.real_gap_length(gappy).values <= 100)
+    assert (flag[short] == flags.FILLED).all()
