@@ -48,7 +48,7 @@ def test_each_bucket_factor_is_the_conformal_order_statistic_of_its_cells():
     bucket = rng.permutation(np.repeat(np.arange(5), [400, 300, 250, 150, 120]))
     # intervals too narrow, more so for longer gaps: every factor above 1
     cells = _cells(bucket, np.array([0.8, 0.7, 0.6, 0.5, 0.4])[bucket])
-    derived = calibration.derive(cells, bucket, LEVELS)
+    derived = calibration.derive(cells, bucket, np.arange(bucket.size), LEVELS)
     for b, label in enumerate(calibration.BUCKETS):
         assert derived["by_bucket"][label]["pooled_with"] == [label]
         for level in LEVELS:
@@ -69,7 +69,7 @@ def test_a_thin_bucket_pools_its_neighbours_by_distance():
     assert calibration.pool_of([10, 10], 0) == [0, 1]  # everything, still thin
     bucket = np.repeat(np.arange(5), counts)
     cells = _cells(bucket, np.full(bucket.size, 0.6))
-    derived = calibration.derive(cells, bucket, LEVELS)
+    derived = calibration.derive(cells, bucket, np.arange(bucket.size), LEVELS)
     inside = np.isin(bucket, [0, 1, 2])
     assert derived["factors"]["90"]["2-6"] == pytest.approx(_direct_factor(cells, inside, 90),
                                                            rel=1e-8)
@@ -80,14 +80,15 @@ def test_a_thin_bucket_pools_its_neighbours_by_distance():
 def test_no_narrowing_without_evidence_of_over_coverage():
     # too wide by 10 %: with 60 cells the over-coverage is not shown, the factor stays 1
     few = np.zeros(60, dtype="int64")
-    derived = calibration.derive(_cells(few, np.full(60, 1.1), seed=2), few, (50,))
+    derived = calibration.derive(_cells(few, np.full(60, 1.1), seed=2), few, np.arange(60),
+                                 (50,))
     record = derived["by_bucket"]["1"]
     assert record["conformal"]["50"] < 1 and not record["narrowed"]["50"]
     assert derived["factors"]["50"]["1"] == 1.0
-    # twice too wide over 3,000 cells: shown beyond doubt, narrowed to the conformal factor
+    # twice too wide over 3,000 cells, each its own run: shown beyond doubt, narrowed
     many = np.zeros(3000, dtype="int64")
     cells = _cells(many, np.full(3000, 2.0), seed=3)
-    derived = calibration.derive(cells, many, (50,))
+    derived = calibration.derive(cells, many, np.arange(3000), (50,))
     record = derived["by_bucket"]["1"]
     hits = int(covered(cells["truth"], cells["lower_50"], cells["upper_50"]).sum())
     # Source: scipy.stats.binomtest, one-sided: coverage above 50 %.
@@ -95,6 +96,14 @@ def test_no_narrowing_without_evidence_of_over_coverage():
         stats.binomtest(hits, 3000, 0.5, alternative="greater").pvalue, rel=1e-9)
     assert record["narrowed"]["50"] and derived["factors"]["50"]["1"] == record["conformal"]["50"]
     assert derived["factors"]["50"]["1"] == pytest.approx(0.5, rel=0.1)
+    # the same cells in 3 runs of 1,000: 3 pieces of evidence cannot show it, no narrowing
+    derived = calibration.derive(cells, many, np.repeat([0, 1, 2], 1000), (50,))
+    record = derived["by_bucket"]["1"]
+    k = math.floor(hits / 3000 * 3)
+    # Source: scipy.stats.binomtest, one-sided, on the runs.
+    assert record["p_over"]["50"] == pytest.approx(
+        stats.binomtest(k, 3, 0.5, alternative="greater").pvalue, rel=1e-9)
+    assert not record["narrowed"]["50"] and derived["factors"]["50"]["1"] == 1.0
 
 
 def test_a_fill_in_a_gap_longer_than_tested_is_flagged():

@@ -474,11 +474,12 @@ def test_a_bucket_with_real_gaps_and_no_hidden_cell_is_reported_untested():
     assert real[">168"] == {"runs": 1, "cells": 200, "longest": 200}
     # as if the holdout had scored 150 cells in gaps of 3 steps and none longer
     found = holdout.evidence(real, calibration.bucket_of(np.full(150, 3)),
-                             np.array([0, 50, 0, 0, 0]), 3, repeats=1, repeats_run=1)
+                             np.repeat(np.arange(50), 3), 3, repeats=1, repeats_run=1)
     assert found["untested"] == [">168"]
     assert found["buckets"][">168"] == {"real_gaps": 1, "real_cells": 200, "hidden_runs": 0,
                                         "hidden_cells": 0, "status": "untested"}
     assert found["buckets"]["2-6"]["status"] == "tested"
+    assert found["buckets"]["2-6"]["hidden_runs"] == 50
     assert found["buckets"]["1"]["status"] == "no gaps"
     assert found["longest_real_steps"] == 200 and found["longest_tested_steps"] == 3
     assert found["note"] is None

@@ -19,7 +19,8 @@ Rules (docs/calibration.md states them for users):
 - **No narrowing without evidence**: a factor below 1 is kept only when the
   pool's intervals cover more than the level with one-sided binomial
   p-value below :data:`NARROW_P` (H0: coverage ≤ level); otherwise it is
-  raised to 1.
+  raised to 1. The test counts hidden runs, not cells (cells of one run are
+  correlated): n = runs in the pool, k = floor(coverage × n).
 """
 
 from __future__ import annotations
@@ -67,7 +68,8 @@ POOLING = (f"a bucket with fewer than {THIN_BUCKET} scored cells takes the cells
            f"within distance 1, then 2, ... of it until the pool holds {THIN_BUCKET} or every "
            "bucket")
 NARROWING = (f"a factor below 1 is kept only when the pool covers more than the level with a "
-             f"one-sided binomial p-value below {NARROW_P} (H0: coverage <= level); otherwise 1")
+             f"one-sided binomial p-value below {NARROW_P} (H0: coverage <= level), counting "
+             "hidden runs, not cells (n = runs, k = floor(coverage x runs)); otherwise 1")
 
 
 def bucket_of(run_length: np.ndarray) -> np.ndarray:
@@ -118,7 +120,7 @@ def pool_of(counts: Sequence[int], bucket: int, thin: int = THIN_BUCKET) -> list
         radius += 1
 
 
-def derive(cells: Mapping[str, np.ndarray], bucket: np.ndarray,
+def derive(cells: Mapping[str, np.ndarray], bucket: np.ndarray, run: np.ndarray,
            levels: Sequence[float]) -> dict:
     """Widening factors per level and gap-length bucket, with the evidence behind each.
 
@@ -129,6 +131,9 @@ def derive(cells: Mapping[str, np.ndarray], bucket: np.ndarray,
         median) and ``lower_<L>``/``upper_<L>`` for each level.
     bucket : ndarray of int (cells,)
         Each cell's bucket index (:func:`bucket_of` of its missing run).
+    run : ndarray of int (cells,)
+        An id of the hidden run each cell sits in (distinct across repeats):
+        the narrowing test counts runs.
     levels : sequence of float
 
     Returns
@@ -144,21 +149,23 @@ def derive(cells: Mapping[str, np.ndarray], bucket: np.ndarray,
         members = pool_of(counts, b)
         inside = np.isin(bucket, members)
         own = bucket == b
+        n_runs = int(np.unique(run[inside]).size)
         record = {"n_cells": counts[b], "pooled_with": [BUCKETS[m] for m in members],
-                  "n_pooled": int(inside.sum()), "coverage_before": {}, "conformal": {},
+                  "n_pooled": int(inside.sum()), "n_runs_pooled": n_runs,
+                  "coverage_before": {}, "conformal": {},
                   "p_over": {}, "narrowed": {}, "coverage_after": {}}
         for level in levels:
             key = level_key(level)
             lower_all, upper_all = cells[f"lower_{key}"], cells[f"upper_{key}"]
             lower, upper = lower_all[inside], upper_all[inside]
             raw = conformal_factor(truth[inside], median[inside], lower, upper, level)
-            hits = int(covered(truth[inside], lower, upper).sum())
-            # Source: scipy.stats.binom — P(X >= hits) under coverage = level.
-            p_over = float(stats.binom.sf(hits - 1, record["n_pooled"], level / 100)) \
-                if record["n_pooled"] else None
+            rate = float(covered(truth[inside], lower, upper).mean()) if n_runs else None
+            # P(X >= k) for X ~ Binomial(runs, level), k = floor(rate × runs): runs, not
+            # cells, are the independent pieces of evidence.
+            p_over = None if rate is None else float(
+                stats.binom.sf(math.floor(rate * n_runs + 1e-9) - 1, n_runs, level / 100))
             narrowed = raw is not None and raw < 1 and p_over is not None and p_over < NARROW_P
-            record["coverage_before"][key] = (hits / record["n_pooled"]
-                                              if record["n_pooled"] else None)
+            record["coverage_before"][key] = rate
             record["conformal"][key] = raw
             record["p_over"][key] = p_over
             record["narrowed"][key] = narrowed

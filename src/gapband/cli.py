@@ -580,6 +580,9 @@ def show_demo_stage(stage: str, quantity: str, produced) -> None:
         console.print(capture_table(produced))
     elif stage == "holdout":
         console.print(scores_table(produced))
+        console.print(bucket_table(produced))
+        for line in evidence_lines(produced["evidence"]):
+            errors.print(f"[bold yellow]note:[/] {escape(line)}", highlight=False)
     elif stage == "fill":
         console.print(f"{quantity}: {widened_text(produced['calibration'])}", highlight=False)
         for warning in produced["diagnostics"].get("warnings", []):

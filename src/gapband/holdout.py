@@ -261,11 +261,11 @@ def run(
     real = _real_gaps(panel, options.rules.min_observed)
     predictors = (PREDICTOR, *baseline_names)
     pooled: dict[str, list[dict]] = {name: [] for name in predictors}
-    positions: list[tuple[np.ndarray, np.ndarray]] = []
+    # per repeat: scored cells' series, missing-run length and run id
+    positions: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
     repeat_records = []
-    hidden_runs = np.zeros(len(BUCKETS), dtype="int64")
     for repeat in range(max(repeats, max_repeats) if scheme == "gaps" else repeats):
-        have = np.bincount(bucket_of(np.concatenate([r for _, r in positions])),
+        have = np.bincount(bucket_of(np.concatenate([r for _, r, _ in positions])),
                            minlength=len(BUCKETS)) if positions else np.zeros(len(BUCKETS), int)
         short = [label for b, label in enumerate(BUCKETS)
                  if real[label]["cells"] and have[b] < THIN_BUCKET]
@@ -295,8 +295,6 @@ def run(
         missing_after = np.isnan(masked["value"].transpose("series", "time").values)
         runs = run_lengths(missing_after)
         scored_cells = np.bincount(bucket_of(runs[series, steps]), minlength=len(BUCKETS))
-        repeat_runs = _hidden_runs(missing_after, series, steps)
-        hidden_runs += repeat_runs
         repeat_records.append({
             **_repeat_record(panel, repeat, hidden, refit),
             "scored_by_gap_length": {label: int(n) for label, n in zip(
@@ -308,7 +306,8 @@ def run(
                 else _kept_scores(result, y, series * n_time + steps, levels))
             for name in baseline_names:
                 pooled[name].append(_baseline_scores(name, to_fit, spec, y, cells, levels))
-            positions.append((series, runs[series, steps]))
+            positions.append((series, runs[series, steps],
+                              _run_ids(missing_after)[series, steps] + repeat * truth.size))
         log.info("repeat %d: %d cells hidden, %d scored", repeat + 1,
                  repeat_records[-1]["hidden_total"], y.size)
     if not positions:
@@ -316,8 +315,9 @@ def run(
                        "failed or were skipped (their errors are in the log); fix the cause, "
                        "use larger blocks, or run the holdout without blocks")
 
-    series = np.concatenate([s for s, _ in positions])
-    runs = np.concatenate([r for _, r in positions])
+    series = np.concatenate([s for s, _, _ in positions])
+    runs = np.concatenate([r for _, r, _ in positions])
+    run_ids = np.concatenate([i for _, _, i in positions])
     groups = {
         "series": (series, [str(s) for s in panel["series"].values]),
         "gap_length": (bucket_of(runs), list(BUCKETS)),
@@ -349,7 +349,7 @@ def run(
         "settings": settings,
         "repeats": repeat_records,
         "series_not_scored": [str(s) for s in panel["series"].values[not_scored]],
-        "evidence": evidence(real, bucket_of(runs), hidden_runs, int(runs.max()), repeats,
+        "evidence": evidence(real, bucket_of(runs), run_ids, int(runs.max()), repeats,
                              len(repeat_records)),
         "scores": {name: scores.breakdown(cells_of[name], levels, groups)
                    for name in predictors},
@@ -358,15 +358,18 @@ def run(
             **{name: scores.pit_histogram(cells["pit"]) for name, cells in cells_of.items()
                if "pit" in cells},
         },
-        "widening": derive(cells_of[PREDICTOR], bucket_of(runs), levels),
+        "widening": derive(cells_of[PREDICTOR], bucket_of(runs), run_ids, levels),
         "seconds": round(time.perf_counter() - started, 2),
         "versions": versions(),
     }
 
 
-def evidence(real: dict, bucket: np.ndarray, hidden_runs: np.ndarray, longest_tested: int,
+def evidence(real: dict, bucket: np.ndarray, run_id: np.ndarray, longest_tested: int,
              repeats: int, repeats_run: int) -> dict:
     """How much holdout evidence each gap-length bucket has, against the real gaps it stands for.
+
+    ``real``: the Panel's gaps per bucket (runs, cells, longest); ``bucket``
+    and ``run_id``: each scored hidden cell's bucket index and hidden run.
 
     A bucket's status: ``tested`` (at least :data:`THIN_BUCKET` scored
     cells), ``thin`` (fewer; its factor pools neighbours' cells), ``untested``
@@ -380,7 +383,8 @@ def evidence(real: dict, bucket: np.ndarray, hidden_runs: np.ndarray, longest_te
         status = ("tested" if n >= THIN_BUCKET else "thin" if n else
                   "untested" if real[label]["cells"] else "no gaps")
         buckets[label] = {"real_gaps": real[label]["runs"], "real_cells": real[label]["cells"],
-                          "hidden_runs": int(hidden_runs[b]), "hidden_cells": n,
+                          "hidden_runs": int(np.unique(run_id[bucket == b]).size),
+                          "hidden_cells": n,
                           "status": status}
     extra = repeats_run - repeats
     return {
@@ -607,15 +611,12 @@ def _real_gaps(panel: xr.Dataset, min_observed: int) -> dict:
     return found
 
 
-def _hidden_runs(missing: np.ndarray, series: np.ndarray, steps: np.ndarray) -> np.ndarray:
-    """Missing runs (after masking) holding a scored hidden cell, counted per bucket."""
-    scored = np.zeros(missing.shape, dtype=bool)
-    scored[series, steps] = True
-    counts = np.zeros(len(BUCKETS), dtype="int64")
+def _run_ids(missing: np.ndarray) -> np.ndarray:
+    """An id per missing run (a flat index of its first cell), at each of its cells."""
+    ids = np.full(missing.shape, -1, dtype="int64")
     for n, start, length in gap_runs(missing):
-        if scored[n, start : start + length].any():
-            counts[bucket_of(np.array([length]))[0]] += 1
-    return counts
+        ids[n, start : start + length] = n * missing.shape[1] + start
+    return ids
 
 
 def _outage(panel: xr.Dataset, observed: np.ndarray, scored: np.ndarray, fraction: float,
