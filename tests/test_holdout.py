@@ -474,7 +474,8 @@ def test_a_bucket_with_real_gaps_and_no_hidden_cell_is_reported_untested():
     assert real[">168"] == {"runs": 1, "cells": 200, "longest": 200}
     # as if the holdout had scored 150 cells in gaps of 3 steps and none longer
     found = holdout.evidence(real, calibration.bucket_of(np.full(150, 3)),
-                             np.repeat(np.arange(50), 3), 3, repeats=1, repeats_run=1)
+                             np.repeat(np.arange(50), 3), 3, repeats=1,
+                             records=[{"short_before": []}])
     assert found["untested"] == [">168"]
     assert found["buckets"][">168"] == {"real_gaps": 1, "real_cells": 200, "hidden_runs": 0,
                                         "hidden_cells": 0, "status": "untested"}

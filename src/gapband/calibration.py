@@ -172,9 +172,8 @@ def derive(cells: Mapping[str, np.ndarray], bucket: np.ndarray, run: np.ndarray,
             factor = None if raw is None else (raw if narrowed else max(raw, 1.0))
             factors[key][label] = factor
             # on the bucket's own cells; by construction at least the level when not pooled
-            record["coverage_after"][key] = None if factor is None or not own.any() else float(
-                np.mean(covered(truth[own], median[own] - factor * (median[own] - lower_all[own]),
-                                median[own] + factor * (upper_all[own] - median[own]))))
+            record["coverage_after"][key] = None if factor is None or not own.any() else \
+                _coverage(truth[own], median[own], lower_all[own], upper_all[own], factor)
         by_bucket[label] = record
     before, after = {}, {}
     for level in levels:
@@ -183,8 +182,7 @@ def derive(cells: Mapping[str, np.ndarray], bucket: np.ndarray, run: np.ndarray,
         before[key] = float(np.mean(covered(truth, lower, upper)))
         table = np.array([np.nan if f is None else f for f in factors[key].values()])
         c = table[bucket]
-        after[key] = None if np.isnan(c).any() else float(np.mean(covered(
-            truth, median - c * (median - lower), median + c * (upper - median))))
+        after[key] = None if np.isnan(c).any() else _coverage(truth, median, lower, upper, c)
     return {
         "levels": list(levels),
         "buckets": list(BUCKETS),
@@ -197,6 +195,13 @@ def derive(cells: Mapping[str, np.ndarray], bucket: np.ndarray, run: np.ndarray,
         "pooling": POOLING,
         "narrowing": NARROWING,
     }
+
+
+def _coverage(y: np.ndarray, median: np.ndarray, lower: np.ndarray, upper: np.ndarray,
+              factor: float | np.ndarray) -> float:
+    """Share of ``y`` inside the interval with half-widths scaled by ``factor``."""
+    return float(np.mean(covered(y, median - factor * (median - lower),
+                                 median + factor * (upper - median))))
 
 
 def spec_content(spec: ModelSpec) -> dict:

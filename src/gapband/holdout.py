@@ -350,7 +350,7 @@ def run(
         "repeats": repeat_records,
         "series_not_scored": [str(s) for s in panel["series"].values[not_scored]],
         "evidence": evidence(real, bucket_of(runs), run_ids, int(runs.max()), repeats,
-                             len(repeat_records)),
+                             repeat_records),
         "scores": {name: scores.breakdown(cells_of[name], levels, groups)
                    for name in predictors},
         "pit_histogram": {
@@ -365,11 +365,12 @@ def run(
 
 
 def evidence(real: dict, bucket: np.ndarray, run_id: np.ndarray, longest_tested: int,
-             repeats: int, repeats_run: int) -> dict:
+             repeats: int, records: Sequence[dict]) -> dict:
     """How much holdout evidence each gap-length bucket has, against the real gaps it stands for.
 
     ``real``: the Panel's gaps per bucket (runs, cells, longest); ``bucket``
-    and ``run_id``: each scored hidden cell's bucket index and hidden run.
+    and ``run_id``: each scored hidden cell's bucket index and hidden run;
+    ``records``: the repeats run, of which the first ``repeats`` were asked for.
 
     A bucket's status: ``tested`` (at least :data:`THIN_BUCKET` scored
     cells), ``thin`` (fewer; its factor pools neighbours' cells), ``untested``
@@ -386,17 +387,18 @@ def evidence(real: dict, bucket: np.ndarray, run_id: np.ndarray, longest_tested:
                           "hidden_runs": int(np.unique(run_id[bucket == b]).size),
                           "hidden_cells": n,
                           "status": status}
-    extra = repeats_run - repeats
+    extra = len(records) - repeats
     return {
         "target_cells": THIN_BUCKET,
         "buckets": buckets,
         "untested": [label for label, rec in buckets.items() if rec["status"] == "untested"],
         "longest_real_steps": max((rec["longest"] for rec in real.values()), default=0),
         "longest_tested_steps": longest_tested,
-        "repeats_run": repeats_run,
+        "repeats_run": len(records),
         "extra_repeats": extra,
-        "note": (f"{extra} repeat(s) added: after {repeats}, a bucket with real gaps held fewer "
-                 f"than {THIN_BUCKET} scored cells" if extra > 0 else None),
+        "note": (f"{extra} repeat(s) added: after {repeats}, gaps of "
+                 f"{', '.join(records[repeats]['short_before'])} steps had fewer than "
+                 f"{THIN_BUCKET} scored hidden cells" if extra > 0 else None),
     }
 
 
