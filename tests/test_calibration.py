@@ -70,9 +70,25 @@ def test_a_thin_bucket_pools_its_neighbours_by_distance():
     bucket = np.repeat(np.arange(5), counts)
     cells = _cells(bucket, np.full(bucket.size, 0.6))
     derived = calibration.derive(cells, bucket, np.arange(bucket.size), LEVELS)
-    inside = np.isin(bucket, [0, 1, 2])
-    assert derived["factors"]["90"]["2-6"] == pytest.approx(_direct_factor(cells, inside, 90),
-                                                           rel=1e-8)
+    # the larger of the pool's factor and the bucket's own (its 40 cells suffice at 90 %)
+    expected = max(_direct_factor(cells, np.isin(bucket, [0, 1, 2]), 90),
+                   _direct_factor(cells, bucket == 1, 90))
+    assert derived["factors"]["90"]["2-6"] == pytest.approx(expected, rel=1e-8)
+    # 5 cells are too few for a factor of their own at 90 %: the pool's alone
+    assert derived["factors"]["90"][">168"] == pytest.approx(
+        _direct_factor(cells, np.ones(bucket.size, dtype=bool), 90), rel=1e-8)
+    # a thin bucket that under-covers keeps its own, larger factor
+    narrow = dict(cells)
+    for level in LEVELS:
+        for side in ("lower", "upper"):
+            narrow[f"{side}_{level}"] = np.where(
+                bucket == 1, cells["point"] + 0.3 * (cells[f"{side}_{level}"] - cells["point"]),
+                cells[f"{side}_{level}"])
+    derived = calibration.derive(narrow, bucket, np.arange(bucket.size), LEVELS)
+    own = _direct_factor(narrow, bucket == 1, 90)
+    assert own > _direct_factor(narrow, np.isin(bucket, [0, 1, 2]), 90)
+    assert derived["factors"]["90"]["2-6"] == pytest.approx(own, rel=1e-8)
+    assert derived["by_bucket"]["2-6"]["coverage_after"]["90"] >= 0.9
     assert derived["by_bucket"]["25-168"]["n_cells"] == 0
     assert derived["by_bucket"]["25-168"]["n_pooled"] == 575
 

@@ -15,7 +15,9 @@ Rules (docs/calibration.md states them for users):
   bucket's n held-out cells.
 - **Pooling**: a bucket with fewer than :data:`THIN_BUCKET` scored cells
   takes the cells of the buckets within distance 1, then 2, … of it, until
-  the pool holds that many cells or every bucket.
+  the pool holds that many cells or every bucket. Its conformal factor is
+  the larger of the pool's and, when its own cells suffice for the level,
+  its own: pooling steadies a thin bucket's factor but never lowers it.
 - **No narrowing without evidence**: a factor below 1 is kept only when the
   pool's intervals cover more than the level with one-sided binomial
   p-value below :data:`NARROW_P` (H0: coverage ≤ level); otherwise it is
@@ -66,7 +68,8 @@ RULE = ("split conformal per gap-length bucket: the ceil((n+1) level/100)-th sma
         "of all repeats")
 POOLING = (f"a bucket with fewer than {THIN_BUCKET} scored cells takes the cells of the buckets "
            f"within distance 1, then 2, ... of it until the pool holds {THIN_BUCKET} or every "
-           "bucket")
+           "bucket; its factor is the larger of the pool's and its own (when it has enough "
+           "cells for the level)")
 NARROWING = (f"a factor below 1 is kept only when the pool covers more than the level with a "
              f"one-sided binomial p-value below {NARROW_P} (H0: coverage <= level), counting "
              "hidden runs, not cells (n = runs, k = floor(coverage x runs)); otherwise 1")
@@ -158,7 +161,9 @@ def derive(cells: Mapping[str, np.ndarray], bucket: np.ndarray, run: np.ndarray,
             key = level_key(level)
             lower_all, upper_all = cells[f"lower_{key}"], cells[f"upper_{key}"]
             lower, upper = lower_all[inside], upper_all[inside]
-            raw = conformal_factor(truth[inside], median[inside], lower, upper, level)
+            raw = _larger(conformal_factor(truth[inside], median[inside], lower, upper, level),
+                          conformal_factor(truth[own], median[own], lower_all[own],
+                                           upper_all[own], level))
             rate = float(covered(truth[inside], lower, upper).mean()) if n_runs else None
             # P(X >= k) for X ~ Binomial(runs, level), k = floor(rate × runs): runs, not
             # cells, are the independent pieces of evidence.
@@ -195,6 +200,11 @@ def derive(cells: Mapping[str, np.ndarray], bucket: np.ndarray, run: np.ndarray,
         "pooling": POOLING,
         "narrowing": NARROWING,
     }
+
+
+def _larger(pooled: float | None, own: float | None) -> float | None:
+    """The pool's factor, raised to the bucket's own where that is larger (None: none)."""
+    return pooled if own is None or (pooled is not None and pooled >= own) else own
 
 
 def _coverage(y: np.ndarray, median: np.ndarray, lower: np.ndarray, upper: np.ndarray,
