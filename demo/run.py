@@ -72,16 +72,19 @@ class Settings:
     chains: int = 2
     keep_draws: int = 200
     period: str = "month"
-    holdout_scheme: str = "blocks"
+    holdout_scheme: str = holdout.DEFAULT_SCHEME
     holdout_fraction: float = 0.1
+    #: Repeats the holdout may run to give every gap length enough hidden cells.
+    holdout_max_repeats: int = holdout.DEFAULT_MAX_REPEATS
     holdout_baselines: tuple[str, ...] = ("linear", "seasonal", "kalman")
 
 
 def settings(quick: bool) -> Settings:
     """The full run (a year, twelve stations) or the quick slice of ``network.toml``."""
     if quick:
+        # One holdout fit per quantity: thin gap-length buckets pool their neighbours.
         return Settings(slice=quick_slice(load_config()), draws=200, tune=200, keep_draws=100,
-                        period="day")
+                        period="day", holdout_max_repeats=1)
     return Settings()
 
 
@@ -145,6 +148,7 @@ def run(out_dir: str | Path, *, quick: bool = False, overwrite: bool = False,
         "settings": {"draws": chosen.draws, "tune": chosen.tune, "chains": chosen.chains,
                      "holdout_scheme": chosen.holdout_scheme,
                      "holdout_fraction": chosen.holdout_fraction,
+                     "holdout_max_repeats": chosen.holdout_max_repeats,
                      "flag_rules": {"level": FLAG_RULES.level,
                                     "max_rel_width": FLAG_RULES.max_rel_width,
                                     "max_gap": FLAG_RULES.max_gap}},
@@ -179,6 +183,7 @@ def run_quantity(out: Path, quantity: Quantity, chosen: Settings, truth: pd.Data
              name, 100 * chosen.holdout_fraction, chosen.holdout_scheme)
     evidence = holdout.run(panel, transform=quantity.transform, options=options,
                            scheme=chosen.holdout_scheme, fraction=chosen.holdout_fraction,
+                           max_repeats=chosen.holdout_max_repeats,
                            baseline_names=chosen.holdout_baselines)
     holdout_path = holdout.write(evidence, folder, overwrite=True)
     show("holdout", name, evidence)
@@ -207,7 +212,9 @@ def run_quantity(out: Path, quantity: Quantity, chosen: Settings, truth: pd.Data
             "scheme": chosen.holdout_scheme,
             "cells": evidence["widening"]["n_cells"],
             "coverage_90": evidence["scores"][holdout.PREDICTOR]["overall"]["coverage"][level],
-            "widening_factor_90": evidence["widening"]["factors"][level],
+            "widening_factors_90": evidence["widening"]["factors"][level],
+            "untested": {label: evidence["evidence"]["buckets"][label]["real_cells"]
+                         for label in evidence["evidence"]["untested"]},
         },
         "truth": against_truth(panel, result, truth),
         "filled_uncertain": summary["flags"]["overall"]["filled_uncertain"],

@@ -210,7 +210,8 @@ def test_dfm_is_scored_through_holdout(airquality):
     small = spec.parse({"base": "daily", "rank": 1, "ar_factors": 0,
                         "seasonal": [{"period": "7D", "harmonics": 1}]})
     options = filling.FillOptions(draws=50, tune=50, seed=2, progress=False)
-    report = holdout.run(airquality, model=small, options=options, baseline_names=("dfm",))
+    report = holdout.run(airquality, model=small, options=options, baseline_names=("dfm",),
+                         max_repeats=1)
     scored = report["scores"]["dfm"]["overall"]
     assert set(report["scores"]) == {"gapband", "dfm"}
     assert scored["n"] == report["scores"]["gapband"]["overall"]["n"]

@@ -83,7 +83,7 @@ def test_filled_nc_has_the_documented_variables(demo, quantity):
                      "gapband_calibration", "history"):
             assert attr in ds.attrs, attr
         assert ds["filled"].attrs["units"] == ds["value"].attrs["units"]
-        assert "widened by factor" in ds["lower_90"].attrs["comment"]
+        assert "widened around the median by the factor" in ds["lower_90"].attrs["comment"]
         flag = ds["fill_flag"].values
         value, filled = ds["value"].values, ds["filled"].values
         assert np.isnan(value[flag != 0]).all() and not np.isnan(value[flag == 0]).any()
@@ -116,16 +116,17 @@ def test_summary_and_holdout_json_hold_the_documented_fields(demo, quantity):
 
     holdout = read_json(out / quantity / "holdout.json")
     for key in ("format", "format_version", "source", "input_sha256", "step", "start", "end",
-                "settings", "repeats", "series_not_scored", "scores", "pit_histogram",
-                "widening", "seconds", "versions"):
+                "settings", "repeats", "series_not_scored", "evidence", "scores",
+                "pit_histogram", "widening", "seconds", "versions"):
         assert key in holdout, key
-    assert holdout["format"] == "gapband holdout" and holdout["settings"]["scheme"] == "blocks"
+    assert holdout["format"] == "gapband holdout" and holdout["settings"]["scheme"] == "gaps"
     assert set(holdout["scores"]) == {"gapband", "linear", "seasonal", "kalman"}
     overall = holdout["scores"]["gapband"]["overall"]
     for key in ("n", "mae", "rmse", "crps", "crps_fair", "coverage", "interval_score",
                 "mean_width"):
         assert key in overall, key
-    for key in ("levels", "factors", "coverage_before", "coverage_after", "n_cells", "rule"):
+    for key in ("levels", "buckets", "factors", "coverage_before", "coverage_after",
+                "by_bucket", "n_cells", "rule", "pooling", "narrowing"):
         assert key in holdout["widening"], key
     assert summary["calibration"]["factors"] == holdout["widening"]["factors"]
     assert summary["input_sha256"] == holdout["input_sha256"]

@@ -9,15 +9,17 @@ is known.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 
 import numpy as np
 import pandas as pd
 import pytest
+import xarray as xr
 from scipy import stats
 
 import open_data
-from gapband import filling, holdout, outputs, scores, spec
+from gapband import calibration, filling, holdout, outputs, scores, spec
 from gapband.errors import InputError, UsageError
 from gapband.panel import GAP_BINS, gap_runs, make_panel, run_lengths
 
@@ -39,7 +41,7 @@ def _interior_lengths(missing_row: np.ndarray) -> set[int]:
 
 # --- masks --------------------------------------------------------------------------------
 
-@pytest.mark.parametrize("scheme", ["random", "blocks", "outage"])
+@pytest.mark.parametrize("scheme", ["gaps", "random", "blocks", "outage"])
 def test_masks_hide_only_observed_cells_and_are_seeded(airquality, scheme):
     first = holdout.mask(airquality, scheme=scheme, seed=3, repeat=1)
     again = holdout.mask(airquality, scheme=scheme, seed=3, repeat=1)
@@ -110,6 +112,46 @@ def test_blocks_fall_back_to_the_default_lengths_without_any_gap():
     assert max(blocks) <= holdout.DEFAULT_MAX_BLOCK and sum(blocks) >= 80
 
 
+def _outages_panel(seed: int = 0, n_series: int = 6, n_time: int = 2000) -> xr.Dataset:
+    """Hourly series with scattered gaps of 1-24 steps and one 200-step outage per series."""
+    rng = np.random.default_rng(seed)
+    missing = np.zeros((n_series, n_time), dtype=bool)
+    for n in range(n_series):
+        start = rng.integers(100, n_time - 300)
+        missing[n, start : start + 200] = True
+        for _ in range(12):
+            length = int(rng.choice([1, 1, 2, 3, 5, 8, 12, 20]))
+            at = int(rng.integers(1, n_time - length - 1))
+            missing[n, at : at + length] = True
+    values = np.where(missing, np.nan, rng.normal(size=(n_series, n_time)))
+    return make_panel(values, [f"s{n}" for n in range(n_series)],
+                      pd.date_range("2000-01-01", periods=n_time, freq="h"), "h")
+
+
+def test_gaps_mask_mirrors_the_panels_gap_lengths_longest_included():
+    panel = _outages_panel()
+    missing = panel["value"].isnull().values
+    real = set().union(*(_interior_lengths(row) for row in missing))
+    observed = (~missing).sum(axis=1)
+    result = holdout.mask(panel, scheme="gaps", fraction=0.2, seed=0)
+    hidden = result.hidden.values
+    runs = [(n, length) for n, _, length in gap_runs(hidden)]
+    # every hidden run has the length of a real gap, and stands alone (never merged)
+    assert {length for _, length in runs} <= real
+    after = run_lengths(missing | hidden)
+    assert set(after[hidden]) <= {length for _, length in runs}
+    # the longest real gap is tested, and every bucket with real gaps gets hidden cells
+    longest = max(real)
+    assert longest in {length for _, length in runs}
+    buckets = {label for label, n in result.details["hidden_by_gap_length"].items() if n}
+    real_buckets = {calibration.BUCKETS[b] for b in calibration.bucket_of(np.array(sorted(real)))}
+    assert buckets == real_buckets
+    # about the fraction in all, no series losing more than SERIES_SHARE of its observations
+    assert abs(hidden.sum() - 0.2 * observed.sum()) <= longest
+    assert (hidden.sum(axis=1) <= holdout.SERIES_SHARE * observed).all()
+    assert result.details["shortfall"] == {}
+
+
 def test_outage_hides_one_window_of_one_series(airquality):
     n_time = airquality.sizes["time"]
     seen = set()
@@ -146,7 +188,10 @@ def test_a_series_too_short_to_spare_cells_is_named(airquality):
     values[2, 11:] = np.nan  # Wind keeps 11 observations: hiding 2 leaves 9 < 10
     panel = airquality.copy(data={"value": values})
     with pytest.raises(InputError, match=r"series 'Wind' has 11 observed cells.*--min-observed"):
-        holdout.mask(panel)
+        holdout.mask(panel, scheme="random")
+    # the gaps scheme hides in the series that can spare cells, the short one keeps its 10
+    hidden = holdout.mask(panel, scheme="gaps").hidden.values
+    assert (~np.isnan(values[2]) & ~hidden[2]).sum() >= 10 and hidden.any()
 
 
 def test_nothing_observed_is_refused():
@@ -186,7 +231,7 @@ def _gaussian_split(seed: int, n: int, predicted_sd: float, level: float):
 @pytest.mark.parametrize("level", [50, 80, 90, 95])
 def test_right_intervals_get_a_factor_near_one(level):
     y, median, lower, upper = _gaussian_split(0, 20_000, 1.0, level)
-    factor = holdout.widening_factor(y, median, lower, upper, level)
+    factor = calibration.conformal_factor(y, median, lower, upper, level)
     # The conformal quantile of |Z| / z_level over 20,000 cells: its sd is below 0.01.
     assert factor == pytest.approx(1.0, abs=0.04)
 
@@ -198,7 +243,7 @@ def test_too_narrow_intervals_are_widened_to_cover(level):
     before = int(scores.covered(y, lower, upper).sum())
     # Source: scipy.stats.binomtest — the narrow intervals cover less than nominal.
     assert stats.binomtest(before, n, level / 100, alternative="less").pvalue < 1e-6
-    factor = holdout.widening_factor(y, median, lower, upper, level)
+    factor = calibration.conformal_factor(y, median, lower, upper, level)
     assert factor == pytest.approx(1 / 0.6, rel=0.08)
     widened = (median - factor * (median - lower), median + factor * (upper - median))
     # on the calibration cells themselves: at least nominal, by construction
@@ -217,7 +262,7 @@ def test_asymmetric_intervals_widen_each_side_by_its_own_half_width():
     y = stats.lognorm(s=0.8).rvs(4000, random_state=rng)
     predictive = stats.lognorm(s=0.5)
     median, lower, upper = (np.full(4000, predictive.ppf(q)) for q in (0.5, 0.05, 0.95))
-    factor = holdout.widening_factor(y, median, lower, upper, 90)
+    factor = calibration.conformal_factor(y, median, lower, upper, 90)
     covered = scores.covered(y, median - factor * (median - lower),
                              median + factor * (upper - median))
     assert factor > 1 and covered.mean() >= 0.9
@@ -225,17 +270,24 @@ def test_asymmetric_intervals_widen_each_side_by_its_own_half_width():
 
 def test_too_few_cells_give_no_factor():
     y, median, lower, upper = _gaussian_split(4, 15, 1.0, 95)
-    assert holdout.widening_factor(y, median, lower, upper, 95) is None  # needs 19 cells
-    assert holdout.widening_factor(y, median, lower, upper, 50) is not None
+    assert calibration.conformal_factor(y, median, lower, upper, 95) is None  # needs 19 cells
+    assert calibration.conformal_factor(y, median, lower, upper, 50) is not None
 
 
 # --- the calibration file and its application --------------------------------------------
 
 def _calibration_file(tmp_path, factors, **changes):
-    content = {"format": filling.CALIBRATION_FORMAT,
-               "format_version": filling.CALIBRATION_VERSION,
-               "settings": {"method": "gibbs", "scheme": "random"},
-               "widening": {"factors": factors}, **changes}
+    """A holdout.json for SMALL with ``factors`` ({level: factor or {bucket: factor}})."""
+    per_bucket = {level: f if isinstance(f, dict) else dict.fromkeys(calibration.BUCKETS, f)
+                  for level, f in factors.items()}
+    content = {"format": calibration.CALIBRATION_FORMAT,
+               "format_version": calibration.CALIBRATION_VERSION,
+               "input_sha256": "abc",
+               "settings": {"method": "gibbs", "scheme": "gaps", "transform": "none",
+                            "spec_detail": SMALL.to_dict(),
+                            "spec_sha256": calibration.spec_sha256(SMALL)},
+               "evidence": {"longest_tested_steps": 2},
+               "widening": {"factors": per_bucket}, **changes}
     path = tmp_path / "holdout.json"
     outputs.write_json(content, path)
     return path
@@ -243,9 +295,9 @@ def _calibration_file(tmp_path, factors, **changes):
 
 def test_widen_scales_half_widths_around_the_median_and_keeps_nesting(tmp_path):
     path = _calibration_file(tmp_path, {"50": 3.0, "90": 1.2})
-    calibration = filling.read_calibration(path)
+    found = calibration.read(path)
     summaries = xr_summaries()
-    widened = filling.widen(summaries, calibration, (50, 90))
+    widened = calibration.widen(summaries, found, (50, 90), filling.real_gap_length(summaries))
     median = summaries["fill_median"]
     expected_upper_90 = median + 1.2 * (summaries["upper_90"] - median)
     np.testing.assert_allclose(widened["upper_90"].values[:, 1:],
@@ -257,7 +309,24 @@ def test_widen_scales_half_widths_around_the_median_and_keeps_nesting(tmp_path):
     assert (widened["upper_90"] >= widened["upper_50"]).values[:, 1:].all()
     assert np.isnan(widened["lower_90"].values[:, 0]).all()  # observed: untouched (NaN)
     assert widened["fill_sd"].equals(summaries["fill_sd"])
-    assert "widened by factor 1.2" in widened["upper_90"].attrs["comment"]
+    assert "1: 1.2" in widened["upper_90"].attrs["comment"]
+
+
+def test_widen_gives_each_cell_the_factor_of_its_gap_length(tmp_path):
+    # steps 1-3 of both series form one gap of 3 (bucket 2-6); a gap of 1 (bucket 1) elsewhere
+    factors = {"50": {"1": 2.0, "2-6": 0.5, "7-24": 1.0, "25-168": 1.0, ">168": 1.0}}
+    found = calibration.read(_calibration_file(tmp_path, factors))
+    summaries = xr_summaries()
+    lengths = filling.real_gap_length(summaries)
+    assert (lengths.values[:, 1:] == 3).all()
+    widened = calibration.widen(summaries, found, (50,), lengths)
+    median = summaries["fill_median"]
+    np.testing.assert_allclose(widened["upper_50"].values[:, 1:],
+                               (median + 0.5 * (summaries["upper_50"] - median)).values[:, 1:])
+    ones = lengths.where(lengths == 0, 1)  # the same cells, as if each sat in a gap of 1
+    widened = calibration.widen(summaries, found, (50,), ones)
+    np.testing.assert_allclose(widened["upper_50"].values[:, 1:],
+                               (median + 2.0 * (summaries["upper_50"] - median)).values[:, 1:])
 
 
 def xr_summaries():
@@ -277,34 +346,45 @@ def xr_summaries():
     ("not json", "is not JSON"),
     ('{"format": "something else"}', "is not a gapband holdout file"),
     ('{"format": "gapband holdout", "format_version": 99}', "has format_version 99"),
-    ('{"format": "gapband holdout", "format_version": 1}', "lacks 'settings'"),
+    ('{"format": "gapband holdout", "format_version": 1}',
+     r"format_version 1; .*\(factors per gap length, .*\): rerun gapband holdout"),
+    ('{"format": "gapband holdout", "format_version": 2}', "lacks 'settings'"),
 ])
 def test_bad_calibration_files_are_named(tmp_path, content, message):
     path = tmp_path / "bad.json"
     path.write_text(content, encoding="utf-8")
     with pytest.raises(InputError, match=message):
-        filling.read_calibration(path)
+        calibration.read(path)
 
 
 def test_a_missing_calibration_file_is_named(tmp_path):
     with pytest.raises(InputError, match="cannot read calibration file .*nowhere.json"):
-        filling.read_calibration(tmp_path / "nowhere.json")
+        calibration.read(tmp_path / "nowhere.json")
 
 
 def test_a_negative_factor_is_refused(tmp_path):
-    with pytest.raises(InputError, match="factor of level 90 is -1"):
-        filling.read_calibration(_calibration_file(tmp_path, {"90": -1}))
+    with pytest.raises(InputError, match="factor of level 90, gap length 1, is -1"):
+        calibration.read(_calibration_file(tmp_path, {"90": -1}))
 
 
-def test_levels_and_method_must_match_the_calibration(tmp_path):
-    calibration = filling.read_calibration(_calibration_file(tmp_path, {"90": 1.1, "95": None}))
+def test_levels_method_transform_and_spec_must_match_the_calibration(tmp_path):
+    found = calibration.read(_calibration_file(tmp_path, {"90": 1.1, "95": None}))
     with pytest.raises(UsageError, match=r"no widening factor for the 80 % level \(it has 90\)"):
-        calibration.check("gibbs", (80, 90))
+        found.check("gibbs", (80, 90), SMALL)
     with pytest.raises(UsageError, match=r"no widening factor for the 95 % level"):
-        calibration.check("gibbs", (95,))
-    with pytest.raises(UsageError, match="made with --method gibbs.*about advi intervals"):
-        calibration.check("advi", (90,))
-    calibration.check("gibbs", (90,))
+        found.check("gibbs", (95,), SMALL)
+    with pytest.raises(InputError, match="made with --method gibbs.*about advi intervals"):
+        found.check("advi", (90,), SMALL)
+    logged = dataclasses.replace(SMALL, transform="log")
+    with pytest.raises(InputError, match="made with transform 'none', this fill uses 'log'"):
+        found.check("gibbs", (90,), logged)
+    wider = dataclasses.replace(SMALL, rank=2)
+    with pytest.raises(InputError, match="another model spec .*differs in rank"):
+        found.check("gibbs", (90,), wider)
+    # the description does not change a fit: not a mismatch
+    found.check("gibbs", (90,), dataclasses.replace(SMALL, description="renamed"))
+    assert found.data_warning("abc") is None
+    assert "made on other data" in found.data_warning("def")
 
 
 # --- whole runs ---------------------------------------------------------------------------
@@ -340,9 +420,12 @@ def test_run_scores_every_predictor_on_the_same_hidden_cells(blocks_run, airqual
 def test_run_widening_covers_the_hidden_cells(blocks_run):
     widening = blocks_run["widening"]
     assert widening["n_cells"] == blocks_run["scores"]["gapband"]["overall"]["n"]
+    assert sum(r["n_cells"] for r in widening["by_bucket"].values()) == widening["n_cells"]
     for key, level in (("50", 50), ("80", 80), ("90", 90), ("95", 95)):
-        assert widening["factors"][key] > 0
-        assert widening["coverage_after"][key] >= level / 100
+        assert all(f > 0 for f in widening["factors"][key].values())
+        for label, record in widening["by_bucket"].items():
+            if record["pooled_with"] == [label]:  # its own cells set its factor
+                assert record["coverage_after"][key] >= level / 100
         assert widening["coverage_before"][key] == blocks_run["scores"]["gapband"][
             "overall"]["coverage"][key]
 
@@ -352,9 +435,12 @@ def test_run_report_is_a_calibration_file(blocks_run, tmp_path):
     assert path.name == "holdout.json"
     content = json.loads(path.read_text(encoding="utf-8"))
     assert content["settings"]["scheme"] == "blocks" and content["settings"]["seed"] == 5
-    calibration = filling.read_calibration(path)
-    assert calibration.factors == content["widening"]["factors"]
-    calibration.check("gibbs", (50, 80, 90, 95))
+    assert content["settings"]["transform"] == "none"
+    assert content["settings"]["spec_sha256"] == calibration.spec_sha256(SMALL)
+    found = calibration.read(path)
+    assert found.factors == content["widening"]["factors"]
+    assert found.longest_tested == content["evidence"]["longest_tested_steps"]
+    found.check("gibbs", (50, 80, 90, 95), SMALL)
     with pytest.raises(UsageError, match="already holds holdout.json"):
         holdout.write(blocks_run, tmp_path)
 
@@ -376,3 +462,25 @@ def test_on_real_hourly_weather_gapband_beats_linear_mae_and_kalman_crps(record_
     record_property("widening_factors", report["widening"]["factors"])
     assert overall["gapband"]["mae"] < overall["linear"]["mae"]
     assert overall["gapband"]["crps"] < overall["kalman"]["crps"]
+
+
+def test_a_bucket_with_real_gaps_and_no_hidden_cell_is_reported_untested():
+    values = np.ones((2, 600))
+    values[0, 100:300] = np.nan  # an outage of 200 steps: bucket >168
+    values[1, 50:53] = np.nan    # a gap of 3: bucket 2-6
+    panel = make_panel(values, ["a", "b"],
+                       pd.date_range("2000-01-01", periods=600, freq="h"), "h")
+    real = holdout._real_gaps(panel, min_observed=10)
+    assert real[">168"] == {"runs": 1, "cells": 200, "longest": 200}
+    # as if the holdout had scored 150 cells in gaps of 3 steps and none longer
+    found = holdout.evidence(real, calibration.bucket_of(np.full(150, 3)),
+                             np.repeat(np.arange(50), 3), 3, repeats=1,
+                             records=[{"short_before": []}])
+    assert found["untested"] == [">168"]
+    assert found["buckets"][">168"] == {"real_gaps": 1, "real_cells": 200, "hidden_runs": 0,
+                                        "hidden_cells": 0, "status": "untested"}
+    assert found["buckets"]["2-6"]["status"] == "tested"
+    assert found["buckets"]["2-6"]["hidden_runs"] == 50
+    assert found["buckets"]["1"]["status"] == "no gaps"
+    assert found["longest_real_steps"] == 200 and found["longest_tested_steps"] == 3
+    assert found["note"] is None

@@ -15,7 +15,7 @@ import pandas as pd
 import pytest
 from click.testing import CliRunner
 
-from gapband import filling, holdout, parallel, spec
+from gapband import calibration, filling, flags, holdout, outputs, parallel, spec
 from gapband.cli import cli
 from gapband.errors import FitError, UsageError
 from gapband.panel import make_panel
@@ -52,18 +52,19 @@ def plan(panel):
 
 @pytest.fixture(scope="module")
 def blocked(panel, plan):
-    return holdout.run(panel, model=TINY, options=OPTIONS, baseline_names=("linear",),
-                       plan=plan, runner=parallel.InProcess())
+    return holdout.run(panel, model=TINY, options=OPTIONS, scheme="random",
+                       baseline_names=("linear",), plan=plan, runner=parallel.InProcess())
 
 
 @pytest.fixture(scope="module")
 def single(panel):
-    return holdout.run(panel, model=TINY, options=OPTIONS, baseline_names=("linear",))
+    return holdout.run(panel, model=TINY, options=OPTIONS, scheme="random",
+                       baseline_names=("linear",))
 
 
 def _hidden_in(panel, block, repeat: int = 0) -> int:
     """Cells the mask of ``repeat`` hides in the core of ``block``."""
-    hidden = holdout.mask(panel, seed=OPTIONS.seed, repeat=repeat).hidden.values
+    hidden = holdout.mask(panel, scheme="random", seed=OPTIONS.seed, repeat=repeat).hidden.values
     return int(hidden[list(block.rows), slice(*block.core)].sum())
 
 
@@ -107,9 +108,9 @@ def test_the_report_records_the_plan_and_each_repeats_blocks(blocked, panel, pla
     assert blocks["failed"] == [] and blocks["skipped"] == []
     assert blocks["diagnostics"]["blocks_filled"] == 4 and blocks["seconds"] > 0
     path = holdout.write(blocked, tmp_path)
-    calibration = filling.read_calibration(path)
-    assert calibration.factors == blocked["widening"]["factors"]
-    calibration.check("gibbs", (50, 80, 90, 95))
+    found = calibration.read(path)
+    assert found.factors == blocked["widening"]["factors"]
+    found.check("gibbs", (50, 80, 90, 95), TINY)
 
 
 def test_cells_of_a_failing_block_are_reported_not_scored(panel, plan, monkeypatch):
@@ -121,8 +122,8 @@ def test_cells_of_a_failing_block_are_reported_not_scored(panel, plan, monkeypat
         return real_fill(block_panel, **kwargs)
 
     monkeypatch.setattr(parallel, "fill", flaky)
-    report = holdout.run(panel, model=TINY, options=OPTIONS, baseline_names=("linear",),
-                         plan=plan)
+    report = holdout.run(panel, model=TINY, options=OPTIONS, scheme="random",
+                         baseline_names=("linear",), plan=plan)
     (record,) = report["repeats"]
     failed = next(b for b in plan.blocks if b.name == "g01-w00")
     lost = _hidden_in(panel, failed)
@@ -155,13 +156,14 @@ def test_no_hidden_cell_filled_is_a_fit_error(panel, plan, monkeypatch):
 
 def test_a_runner_without_a_plan_is_refused(panel):
     with pytest.raises(UsageError, match="a runner runs blocks: give the block plan too"):
-        holdout.run(panel, model=TINY, options=OPTIONS, runner=parallel.InProcess())
+        holdout.run(panel, model=TINY, options=OPTIONS, scheme="random",
+                    runner=parallel.InProcess())
 
 
 def test_blocks_without_kept_draws_are_refused(panel, plan):
     options = dataclasses.replace(OPTIONS, keep_draws=0)
     with pytest.raises(UsageError, match="keep_draws = 0: a block-wise holdout scores"):
-        holdout.run(panel, model=TINY, options=options, plan=plan)
+        holdout.run(panel, model=TINY, options=options, scheme="random", plan=plan)
 
 
 @pytest.fixture(scope="module")
@@ -180,9 +182,9 @@ def test_holdout_command_runs_blocks_and_calibrates_a_block_fill(files, panel, p
               "--seed", "3", "--quiet", "--blocks", BLOCKS_TEXT]
     runner = CliRunner()
     done = runner.invoke(cli, ["holdout", *common, "--out", str(root / "check"),
-                               "--baselines", "linear"])
+                               "--baselines", "linear", "--max-repeats", "1"])
     assert done.exit_code == 0, done.output
-    assert "widening factors:" in done.output and "not scored" not in done.output
+    assert "widening factors by gap length" in done.output and "not scored" not in done.output
     report = json.loads((root / "check" / "holdout.json").read_text(encoding="utf-8"))
     assert report["settings"]["blocks"]["blocks"] == plan.describe(panel)["blocks"]
     (record,) = report["repeats"]
@@ -203,3 +205,33 @@ def test_holdout_command_refuses_two_clusters(files, tmp_path):
     assert done.exit_code == 2
     assert "give --workers (a new local cluster) or --scheduler" in done.output
     assert not (tmp_path / "o").exists()
+
+
+def test_a_block_fill_widens_and_flags_by_the_whole_panels_gap_lengths(panel, plan, tmp_path):
+    values = panel["value"].values.copy()
+    values[0, 150:340] = np.nan  # 190 steps (>168); window g00-w00 ends at 264, seeing 114
+    gappy = panel.copy(data={"value": values})
+    wide = dict.fromkeys(calibration.BUCKETS, 1.0) | {">168": 3.0}
+    path = tmp_path / "holdout.json"
+    outputs.write_json({
+        "format": calibration.CALIBRATION_FORMAT,
+        "format_version": calibration.CALIBRATION_VERSION,
+        "input_sha256": gappy.attrs.get("input_sha256"),
+        "settings": {"method": "gibbs", "scheme": "gaps", "transform": TINY.transform,
+                     "spec_detail": TINY.to_dict(), "spec_sha256": calibration.spec_sha256(TINY)},
+        "evidence": {"longest_tested_steps": 100},
+        "widening": {"factors": {level: wide for level in LEVELS}}}, path)
+    options = dataclasses.replace(
+        OPTIONS, rules=filling.FlagRules(accept_unconverged=True), keep_draws=0)
+    plain, _ = parallel.fill_blocks(gappy, plan, model=TINY, options=options)
+    widened, summary = parallel.fill_blocks(gappy, plan, model=TINY, options=options,
+                                            calibration=path)
+    assert summary["calibration"]["factors"]["90"][">168"] == 3.0
+    core = slice(150, 192)  # in the core of g00-w00, whose window cuts the gap to 114 steps
+    median = plain["fill_median"].values[0, core]
+    np.testing.assert_allclose(widened["upper_90"].values[0, core] - median,
+                               3.0 * (plain["upper_90"].values[0, core] - median), rtol=1e-9)
+    flag = widened["fill_flag"].values
+    assert (flag[0, 150:340] == flags.FILLED_UNCERTAIN).all()  # longer than the 100 tested
+    short = np.isnan(values) & (filling.real_gap_length(gappy).values <= 100)
+    assert (flag[short] == flags.FILLED).all()

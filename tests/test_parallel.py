@@ -349,9 +349,11 @@ def test_dask_retries_a_failing_block_on_a_running_scheduler(gappy, plan):
     yearly = spec.parse({"base": "hourly", "rank": 1,
                          "seasonal": [{"period": "365D", "harmonics": 1}]})
     jobs = []
+    lengths = filling.real_gap_length(panel)
     for block, model in zip(plan.blocks[:2], (TINY, yearly), strict=True):
-        sub = panel.isel(series=list(block.rows), time=slice(*block.window))
-        jobs.append(parallel.BlockJob(block, sub, panel.sizes["time"], model, OPTIONS, None))
+        window = {"series": list(block.rows), "time": slice(*block.window)}
+        jobs.append(parallel.BlockJob(block, panel.isel(window), panel.sizes["time"], model,
+                                      OPTIONS, None, lengths.isel(window)))
     done = []
     with LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=None) as cluster:
         outcomes = parallel.DaskRunner(scheduler=cluster.scheduler_address).run(jobs,

@@ -59,7 +59,7 @@ def report_html(fill_dir):
 def test_every_section_is_present(report_html):
     for heading in HEADINGS:
         assert f">{heading}</h2>" in report_html, heading
-    for text in ("reliability diagram", "PIT histogram", "CRPS", "Coverage by gap length",
+    for text in ("reliability diagram", "PIT histogram", "CRPS", "Evidence by gap length",
                  "kalman", "linear", "not measurements", "local regulator"):
         assert text in report_html, text
 

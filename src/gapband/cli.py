@@ -21,6 +21,7 @@ from rich.table import Table
 import gapband
 from gapband.chains import DEFAULT_CHAINS, TIME_BUDGET
 from gapband.errors import FitError, GapbandError, InputError, Interrupted, SpecError, UsageError
+from gapband.holdout import DEFAULT_FRACTION, DEFAULT_MAX_REPEATS, DEFAULT_SCHEME, SCHEMES
 from gapband.stats import DEFAULT_LEVEL, DEFAULT_MIN_CAPTURE, OVERS, PERIODS
 
 if TYPE_CHECKING:
@@ -253,6 +254,9 @@ def plan_and_runner(panel, model, given: dict) -> tuple:
 @click.option("--accept-unconverged", is_flag=True,
               help="Keep the fills of a fit whose chains did not agree as 'filled' "
               "(by default they are flagged filled_uncertain).")
+@click.option("--flag-untested/--no-flag-untested", default=True, show_default=True,
+              help="With --calibration: flag fills in gaps longer than the holdout tested "
+              "filled_uncertain.")
 @click.option("--table", type=click.Choice(["csv", "parquet"]), default="csv",
               show_default=True, help="Format of the long table.")
 @click.option("--causes", "causes_path", type=click.Path(path_type=Path), metavar="CSV",
@@ -269,14 +273,16 @@ def plan_and_runner(panel, model, given: dict) -> tuple:
 @click.option("--overwrite", is_flag=True, help="Replace existing outputs in --out.")
 @handle_errors
 def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width, max_gap,
-         accept_unconverged, table, causes_path, decimals, keep_draws, overwrite, **kw):
+         accept_unconverged, flag_untested, table, causes_path, decimals, keep_draws,
+         overwrite, **kw):
     """Fill every missing cell of INPUT with a credible interval and a flag."""
     from gapband import filling
     from gapband.outputs import prepare_dir
 
     model, transform, options = fill_settings(kw, level=flag_level, max_width=max_width,
                                               max_rel_width=max_rel_width, max_gap=max_gap,
-                                              accept_unconverged=accept_unconverged)
+                                              accept_unconverged=accept_unconverged,
+                                              flag_untested=flag_untested)
     options.keep_draws = keep_draws
     blocks = block_settings(kw)
     prepare_dir(out_dir, ["filled.nc", f"filled.{table}", "summary.json"], overwrite)
@@ -305,9 +311,7 @@ def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width,
     for warning in summary["diagnostics"].get("warnings", []):
         errors.print(f"[bold yellow]warning:[/] {escape(warning)}", highlight=False)
     if summary["calibration"] is not None:
-        factors = summary["calibration"]["factors"]
-        console.print("intervals widened by " + ", ".join(
-            f"{factor:.3g} ({level} %)" for level, factor in factors.items()), highlight=False)
+        console.print(widened_text(summary["calibration"]), highlight=False)
     counts = summary["flags"]["overall"]
     console.print(
         "cells: " + ", ".join(f"{n} {meaning}" for meaning, n in counts.items()), highlight=False
@@ -345,22 +349,28 @@ def parse_baselines(ctx, param, text: str) -> tuple[str, ...]:
 @model_options
 @click.option("--out", "out_dir", type=click.Path(path_type=Path), required=True,
               help="Folder for holdout.json.")
-@click.option("--scheme", type=click.Choice(["random", "blocks", "outage"]), default="random",
+@click.option("--scheme", type=click.Choice(SCHEMES), default=DEFAULT_SCHEME,
               show_default=True,
-              help="Hide random cells, blocks as long as the series' own gaps, or one "
-              "series for a window.")
-@click.option("--fraction", type=float, default=0.2, show_default=True,
-              help="Share of each series' observed cells to hide (outage: share of the "
-              "record the window spans); in (0, 1).")
+              help="gaps: runs as long as the panel's real gaps, every gap-length bucket "
+              "tested; random cells; blocks as long as each series' own gaps; or one series "
+              "for a window.")
+@click.option("--fraction", type=float, default=DEFAULT_FRACTION, show_default=True,
+              help="Share of the observed cells to hide (outage: share of the record the "
+              "window spans); in (0, 1).")
 @click.option("--repeats", type=click.IntRange(1), default=1, show_default=True,
               help="Masks (and refits) to pool the scores over.")
+@click.option("--max-repeats", type=click.IntRange(1), default=DEFAULT_MAX_REPEATS,
+              show_default=True,
+              help="gaps: run more repeats, up to this many in all, while a gap-length "
+              "bucket with real gaps has too few hidden cells.")
 @click.option("--baselines", "baseline_names", callback=parse_baselines,
               default="linear,seasonal,kalman", show_default=True,
               help="Baselines scored on the same hidden cells (comma-separated; '' for none).")
 @block_options
 @click.option("--overwrite", is_flag=True, help="Replace an existing holdout.json in --out.")
 @handle_errors
-def holdout(input_path, out_dir, scheme, fraction, repeats, baseline_names, overwrite, **kw):
+def holdout(input_path, out_dir, scheme, fraction, repeats, max_repeats, baseline_names,
+            overwrite, **kw):
     """Hide observed cells of INPUT, refit, score the fills and derive widening factors."""
     from gapband.holdout import run, write
     from gapband.outputs import prepare_dir
@@ -371,15 +381,72 @@ def holdout(input_path, out_dir, scheme, fraction, repeats, baseline_names, over
     panel = gapband.read(input_path, **kw)
     plan, runner = (None, None) if blocks is None else plan_and_runner(panel, model, blocks)
     report = run(panel, model=model, transform=transform, options=options, scheme=scheme,
-                 fraction=fraction, repeats=repeats, baseline_names=baseline_names, plan=plan,
-                 runner=runner)
+                 fraction=fraction, repeats=repeats, max_repeats=max_repeats,
+                 baseline_names=baseline_names, plan=plan, runner=runner)
     path = write(report, out_dir, overwrite=True)
     console.print(scores_table(report))
-    factors = report["widening"]["factors"]
-    console.print("widening factors: " + ", ".join(
-        f"{level} % x{'-' if f is None else format(f, '.3g')}" for level, f in factors.items()),
-        highlight=False)
+    console.print(bucket_table(report))
+    for line in evidence_lines(report["evidence"]):
+        errors.print(f"[bold yellow]note:[/] {escape(line)}", highlight=False)
+    console.print(factors_table(report["widening"]))
     console.print(f"wrote {path}", highlight=False)
+
+
+def bucket_table(report: dict) -> Table:
+    """Evidence and scores per gap-length bucket: real fills, hidden cells, each predictor."""
+    levels = [f"{level:g}" for level in report["settings"]["levels"]]
+    buckets = report["evidence"]["buckets"]
+    table = Table(title="by gap length (steps): the real gaps and the hidden cells that test "
+                  "them", caption="cover: gapband's coverage; CRPS (gapband, or MAE for a point "
+                  "fill) per predictor; untested: real gaps, no hidden cell of that length")
+    for header in ("gap length", "real fills", "hidden (runs)", "status",
+                   *(f"cover {lv} %" for lv in levels), *report["scores"]):
+        table.add_column(header, justify="left" if header == "gap length" else "right",
+                         no_wrap=True)
+    for label, record in buckets.items():
+        if not record["real_cells"] and not record["hidden_cells"]:
+            continue
+        scored = {name: b["gap_length"].get(label) for name, b in report["scores"].items()}
+        coverage = (scored["gapband"] or {}).get("coverage") or {}
+        table.add_row(
+            label, str(record["real_cells"]),
+            f"{record['hidden_cells']} ({record['hidden_runs']})",
+            "[red]untested[/]" if record["status"] == "untested" else record["status"],
+            *(_number(coverage.get(lv), ".3f") for lv in levels),
+            *(_number(None if s is None else (s["crps"] if s["crps"] is not None
+                                              else s["mae"]), ".4g")
+              for s in scored.values()),
+        )
+    return table
+
+
+def evidence_lines(evidence: dict) -> list[str]:
+    """What the holdout could not test, and the repeats it added, in sentences."""
+    lines = [evidence["note"]] if evidence["note"] else []
+    for label in evidence["untested"]:
+        lines.append(f"gaps of {label} steps: {evidence['buckets'][label]['real_cells']} real "
+                     "fills, no hidden cell of that length (untested)")
+    return lines
+
+
+def factors_table(widening: dict) -> Table:
+    """The widening factors per level and gap-length bucket."""
+    table = Table(title="widening factors by gap length (steps)", caption=widening["narrowing"])
+    table.add_column("level", justify="left")
+    for label in widening["buckets"]:
+        table.add_column(label, justify="right")
+    for level, by_bucket in widening["factors"].items():
+        table.add_row(f"{level} %", *(_number(f, ".3g") for f in by_bucket.values()))
+    return table
+
+
+def widened_text(record: dict) -> str:
+    """One line saying how a fill's intervals were widened."""
+    labels = list(next(iter(record["factors"].values())))
+    return (f"intervals widened per gap length ({' | '.join(labels)} steps): " + "; ".join(
+        f"{level} % x" + "/".join(_number(f, ".3g") for f in by_bucket.values())
+        for level, by_bucket in record["factors"].items())
+        + f"; tested up to {record['longest_tested_steps']} steps")
 
 
 def scores_table(report: dict) -> Table:
@@ -391,7 +458,7 @@ def scores_table(report: dict) -> Table:
     unscored = sum(r["not_scored"]["total"] for r in report["repeats"] if "not_scored" in r)
     table = Table(
         title=f"{escape(str(report['source']))}: {settings['scheme']} holdout, "
-        f"{hidden} cells hidden over {settings['repeats']} repeat(s)"
+        f"{hidden} cells hidden over {len(report['repeats'])} repeat(s)"
         + (f", {unscored} of them not scored (left unfilled by the blocks)" if unscored else ""),
         caption="coverage: share of hidden values inside the central interval; "
         "CRPS, MAE, RMSE in data units (smaller is better)",
@@ -558,10 +625,11 @@ def show_demo_stage(stage: str, quantity: str, produced) -> None:
         console.print(capture_table(produced))
     elif stage == "holdout":
         console.print(scores_table(produced))
+        console.print(bucket_table(produced))
+        for line in evidence_lines(produced["evidence"]):
+            errors.print(f"[bold yellow]note:[/] {escape(line)}", highlight=False)
     elif stage == "fill":
-        factors = produced["calibration"]["factors"]
-        console.print(f"{quantity}: intervals widened by " + ", ".join(
-            f"{factor:.3g} ({level} %)" for level, factor in factors.items()), highlight=False)
+        console.print(f"{quantity}: {widened_text(produced['calibration'])}", highlight=False)
         for warning in produced["diagnostics"].get("warnings", []):
             errors.print(f"[bold yellow]warning:[/] {escape(warning)}", highlight=False)
     elif stage == "stats":

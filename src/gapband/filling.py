@@ -9,7 +9,6 @@ atomically. The command line and the demo call these two.
 from __future__ import annotations
 
 import dataclasses
-import hashlib
 import json
 import logging
 import os
@@ -24,10 +23,10 @@ import pandas as pd
 import xarray as xr
 
 from gapband import causes, flags, outputs, resources
+from gapband.calibration import Calibration, read, widen
 from gapband.chains import DEFAULT_CHAINS, TIME_BUDGET
 from gapband.errors import GapbandError, InputError, UsageError
-from gapband.panel import step_of
-from gapband.scores import level_key
+from gapband.panel import run_lengths, step_of
 from gapband.spec import ModelSpec, check_against, load, preset_for
 
 if TYPE_CHECKING:
@@ -42,9 +41,6 @@ DEFAULT_KEEP_DRAWS = 200
 #: Missing cells whose joint draws are computed at a time (bounds working memory).
 DRAW_CHUNK_CELLS = 4096
 COMPONENTS: tuple[str, ...] = ("trend", "seasonal", "short_term", "own")
-#: What ``gapband holdout`` writes into ``holdout.json`` and ``--calibration`` expects.
-CALIBRATION_FORMAT = "gapband holdout"
-CALIBRATION_VERSION = 1
 _VERSIONED = ("gapband", "numpy", "scipy", "pandas", "xarray", "pymc", "pytensor", "arviz")
 
 
@@ -59,6 +55,8 @@ class FlagRules:
     min_observed: int = flags.MIN_OBSERVED
     #: Keep the fills of a fit whose chains did not converge as ``filled``.
     accept_unconverged: bool = False
+    #: With a calibration: flag fills in gaps longer than its holdout tested.
+    flag_untested: bool = True
 
 
 @dataclass
@@ -138,7 +136,8 @@ def fill(
     model: str | Path | ModelSpec | None = None,
     transform: str | None = None,
     options: FillOptions | None = None,
-    calibration: str | Path | None = None,
+    calibration: str | Path | Calibration | None = None,
+    gap_length: xr.DataArray | None = None,
 ) -> tuple[xr.Dataset, dict]:
     """Fill every missing cell of a Panel from the posterior predictive.
 
@@ -152,10 +151,17 @@ def fill(
         Overrides the spec's transform (use "log" for positive, skewed data).
     options : FillOptions, optional
         Method, draws, levels, seed and flag rules.
-    calibration : path, optional
-        A ``holdout.json`` written by :func:`gapband.holdout.run`: its
-        widening factors are applied to every interval (see :func:`widen`)
-        before the flags are computed.
+    calibration : path or Calibration, optional
+        A ``holdout.json`` written by :func:`gapband.holdout.run`, checked
+        against the method, levels and spec (:meth:`Calibration.check`; a
+        :class:`~gapband.calibration.Calibration` object is taken as checked):
+        each interval is widened by the factor of its level and gap-length
+        bucket (:func:`gapband.calibration.widen`) before the flags are
+        computed, and fills in gaps longer than the holdout tested are
+        flagged uncertain unless ``options.rules.flag_untested`` is False.
+    gap_length : DataArray of int, dims (series, time), optional
+        Length of the real missing run each cell sits in; default: the
+        Panel's own. A block of a larger Panel passes the whole Panel's.
 
     Returns
     -------
@@ -173,11 +179,11 @@ def fill(
     Raises
     ------
     InputError
-        Nothing observed, no series with enough observations, or an
-        unreadable calibration file.
+        Nothing observed, no series with enough observations, or a
+        calibration file that is unreadable or made with another method,
+        transform or spec.
     UsageError, SpecError
-        Bad options or spec, or a calibration file that does not cover the
-        levels or the method.
+        Bad options or spec, or a calibration file without a level.
     """
     from gapband import predict  # PyMC is imported only when a fit runs
 
@@ -194,21 +200,28 @@ def fill(
             f"the flag rule looks at the {options.rules.level:g} % interval, which is not "
             f"among the levels {list(levels)}; add it to --levels or change --flag-level"
         )
-    widening = None if calibration is None else read_calibration(calibration)
-    if widening is not None:
-        widening.check(options.method, levels)
-    fitted = fit_panel(panel, model=model, transform=transform, options=options)
+    spec, spec_label = resolve_spec(panel, model, transform)
+    widening, calibration_warning = (None, None) if calibration is None else (
+        (calibration, None) if isinstance(calibration, Calibration)
+        else checked_calibration(calibration, panel, spec, options.method, levels))
+    if gap_length is None:
+        gap_length = real_gap_length(panel)
+    fitted = dataclasses.replace(fit_panel(panel, model=spec, options=options),
+                                 spec_label=spec_label)
     log.info("fit done in %.1f s; summarising the posterior predictive", fitted.seconds)
     started = time.perf_counter()
     summaries = predict.summarise(fitted.fit, fitted.panel, levels=levels, seed=options.seed,
                                   progress=options.progress)
     if widening is not None:
-        summaries = widen(summaries, widening, levels)
+        summaries = widen(summaries, widening, levels,
+                          gap_length.sel(series=fitted.panel["series"]))
 
     result = panel.merge(summaries.drop_vars("value"), join="left")
     unusable = int(flags.no_fill(result).sel(series=fitted.panel["series"]).sum())
     result = flags.assign(result, **dataclasses.asdict(options.rules),
-                          unconverged=not fitted.fit.diagnostics["converged"])
+                          unconverged=not fitted.fit.diagnostics["converged"],
+                          tested_gap=None if widening is None else widening.longest_tested,
+                          gap_length=gap_length)
     result = result.merge(component_means(fitted, panel))
     if options.keep_draws:
         result = result.merge(joint_draws(fitted, result, options.keep_draws, options.seed))
@@ -216,6 +229,9 @@ def fill(
     if not observed_unchanged(panel, result):  # a guard on our own code, never expected
         raise GapbandError("internal error: an observed value changed during the fill")
     diagnostics = fitted.fit.diagnostics
+    if calibration_warning is not None:
+        diagnostics = {**diagnostics, "warnings": [*diagnostics.get("warnings", []),
+                                                   calibration_warning]}
     if unusable:
         diagnostics = {**diagnostics, "warnings": [*diagnostics.get("warnings", []), (
             f"{unusable} missing cells got no finite predictive summary (values "
@@ -259,6 +275,30 @@ def record_run(result: xr.Dataset, panel: xr.Dataset, spec: ModelSpec, spec_labe
         "timings": timings,
         "versions": versions(),
     }
+
+
+def checked_calibration(path: str | Path, panel: xr.Dataset, spec: ModelSpec, method: str,
+                        levels: tuple[float, ...]) -> tuple[Calibration, str | None]:
+    """Read a ``holdout.json`` and refuse a fill it was not made for.
+
+    Returns the calibration and a warning when the Panel's input differs from
+    the one the holdout used, else None.
+
+    Raises
+    ------
+    InputError, UsageError
+        As :func:`gapband.calibration.read` and :meth:`Calibration.check`.
+    """
+    found = read(path)
+    found.check(method, levels, spec)
+    return found, found.data_warning(panel.attrs.get("input_sha256"))
+
+
+def real_gap_length(panel: xr.Dataset) -> xr.DataArray:
+    """Length in steps of the missing run each cell of a Panel sits in (0 where observed)."""
+    missing = panel["value"].transpose("series", "time").isnull()
+    return xr.DataArray(run_lengths(missing.values), coords=missing.coords, dims=missing.dims,
+                        name="gap_length")
 
 
 @dataclass(frozen=True)
@@ -580,118 +620,3 @@ def observed_unchanged(panel: xr.Dataset, result: xr.Dataset) -> bool:
     after = result["filled"].transpose("series", "time").values
     seen = ~np.isnan(before)
     return bool(np.array_equal(before[seen].view("int64"), after[seen].view("int64")))
-
-
-@dataclass(frozen=True)
-class Calibration:
-    """Widening factors per interval level, read from a ``holdout.json``."""
-
-    path: str
-    sha256: str
-    method: str
-    scheme: str
-    factors: dict[str, float | None]
-
-    def check(self, method: str, levels: tuple[float, ...]) -> None:
-        """Refuse a fill these factors were not derived for (another method, a missing level).
-
-        Raises
-        ------
-        UsageError
-            The method differs, or a level has no factor in the file.
-        """
-        if method != self.method:
-            raise UsageError(
-                f"calibration file {self.path!r} was made with --method {self.method}; its "
-                f"factors say nothing about {method} intervals: run gapband holdout with "
-                f"--method {method}, or fill with --method {self.method}"
-            )
-        for level in levels:
-            if self.factors.get(level_key(level)) is None:
-                known = [k for k, v in self.factors.items() if v is not None]
-                raise UsageError(
-                    f"calibration file {self.path!r} has no widening factor for the "
-                    f"{level:g} % level (it has {', '.join(known) or 'none'}); fill with "
-                    "--levels among those, or rerun gapband holdout with this level (and "
-                    "enough hidden cells for it)"
-                )
-
-    def record(self, levels: tuple[float, ...]) -> dict:
-        """What the outputs say about the widening applied (JSON-ready)."""
-        return {
-            "file": self.path,
-            "sha256": self.sha256,
-            "method": self.method,
-            "scheme": self.scheme,
-            "factors": {level_key(lv): self.factors[level_key(lv)] for lv in levels},
-        }
-
-
-def read_calibration(path: str | Path) -> Calibration:
-    """Read the widening factors of a ``holdout.json`` written by ``gapband holdout``.
-
-    Raises
-    ------
-    InputError
-        The file cannot be read, is not JSON, is not a gapband holdout file
-        of this version, or holds a factor that is not a positive number.
-    """
-    path = Path(path)
-    try:
-        raw = path.read_bytes()
-    except OSError as exc:
-        raise InputError(f"cannot read calibration file {str(path)!r}: {exc.strerror}") from exc
-    try:
-        data = json.loads(raw.decode("utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise InputError(f"calibration file {str(path)!r} is not JSON ({exc}); give the "
-                         "holdout.json written by gapband holdout") from exc
-    if not isinstance(data, dict) or data.get("format") != CALIBRATION_FORMAT:
-        raise InputError(f"calibration file {str(path)!r} is not a gapband holdout file "
-                         f"(no \"format\": \"{CALIBRATION_FORMAT}\"); give the holdout.json "
-                         "written by gapband holdout")
-    if data.get("format_version") != CALIBRATION_VERSION:
-        raise InputError(f"calibration file {str(path)!r} has format_version "
-                         f"{data.get('format_version')!r}; this gapband reads version "
-                         f"{CALIBRATION_VERSION}: rerun gapband holdout")
-    try:
-        method, scheme = data["settings"]["method"], data["settings"]["scheme"]
-        factors = dict(data["widening"]["factors"])
-    except (KeyError, TypeError) as exc:
-        raise InputError(f"calibration file {str(path)!r} lacks {exc}; rerun gapband "
-                         "holdout") from exc
-    for key, factor in factors.items():
-        ok = factor is None or (isinstance(factor, int | float) and not isinstance(factor, bool)
-                                and np.isfinite(factor) and factor > 0)
-        if not ok:
-            raise InputError(f"calibration file {str(path)!r}: the factor of level {key} is "
-                             f"{factor!r}, not a positive number; rerun gapband holdout")
-    return Calibration(str(path), hashlib.sha256(raw).hexdigest(), method, scheme, factors)
-
-
-def widen(summaries: xr.Dataset, calibration: Calibration,
-          levels: tuple[float, ...]) -> xr.Dataset:
-    """Scale each interval's half-widths around the predictive median by its level's factor.
-
-    ``lower = median - c (median - lower)``, ``upper = median + c (upper -
-    median)``. Intervals are then nested again where different factors
-    crossed them: each level's bounds are taken at least as wide as those of
-    the levels below it. Observed cells (NaN bounds) stay NaN; ``fill_mean``,
-    ``fill_median`` and ``fill_sd`` are unchanged.
-    """
-    out = summaries.copy()
-    median = summaries["fill_median"]
-    inner: tuple[xr.DataArray, xr.DataArray] | None = None
-    for level in sorted(levels):
-        factor = calibration.factors[level_key(level)]
-        names = [f"{side}_{level_key(level).replace('.', '_')}" for side in ("lower", "upper")]
-        lower = median - factor * (median - summaries[names[0]])
-        upper = median + factor * (summaries[names[1]] - median)
-        if inner is not None:
-            lower, upper = np.fmin(lower, inner[0]), np.fmax(upper, inner[1])
-        note = f"widened by factor {factor:.6g} around the median ({calibration.path})"
-        for name, bound in zip(names, (lower, upper), strict=True):
-            out[name] = bound.where(summaries[name].notnull())
-            out[name].attrs = {**summaries[name].attrs, "comment": note}
-        inner = (lower, upper)
-    return out

@@ -11,8 +11,10 @@ CF Conventions 1.10, section 3.5), linked from ``value`` and ``filled`` by
   ``filled`` and every fill summary are NaN there.
 - ``2 filled_uncertain``: a missing cell whose interval at ``level`` is wider
   than ``max_width`` (data units) or than ``max_rel_width`` times the series'
-  spread, which sits in a missing run lasting longer than ``max_gap``, or
-  which comes from a fit whose chains did not converge (unless accepted).
+  spread, which sits in a missing run lasting longer than ``max_gap`` or
+  longer than the longest run a calibration's holdout tested
+  (``tested_gap``, unless ``flag_untested`` is off), or which comes from a
+  fit whose chains did not converge (unless accepted).
 - ``1 filled``: every other missing cell.
 """
 
@@ -90,6 +92,9 @@ def assign(
     min_observed: int = MIN_OBSERVED,
     accept_unconverged: bool = False,
     unconverged: bool | xr.DataArray = False,
+    flag_untested: bool = True,
+    tested_gap: int | None = None,
+    gap_length: xr.DataArray | None = None,
 ) -> xr.Dataset:
     """Flag every cell and build the ``filled`` series.
 
@@ -117,6 +122,14 @@ def assign(
     unconverged : bool or DataArray of bool, dims (series, time)
         Cells filled by a fit whose chains did not converge (True: all); they
         are uncertain unless ``accept_unconverged``.
+    flag_untested : bool
+        Flag fills in missing runs longer than ``tested_gap`` uncertain.
+    tested_gap : int, optional
+        Longest missing run (steps) the calibration's holdout tested; None:
+        no calibration, no such rule.
+    gap_length : DataArray of int, dims (series, time), optional
+        Length of the missing run each cell sits in; default: the runs of
+        ``result``'s missing cells (a block fill passes the whole Panel's).
 
     Returns
     -------
@@ -152,9 +165,15 @@ def assign(
             uncertain = uncertain | (width > max_width)
         if max_rel_width is not None:
             uncertain = uncertain | (width > max_rel_width * spread(result))
-    if gap_limit is not None:
+    if gap_length is None:
         runs = xr.DataArray(run_lengths(missing.values), coords=missing.coords, dims=missing.dims)
+    else:
+        runs = gap_length.transpose("series", "time")
+    if gap_limit is not None:
         uncertain = uncertain | (runs > gap_limit / step_of(result))
+    untested = flag_untested and tested_gap is not None
+    if untested:
+        uncertain = uncertain | (missing & (runs > tested_gap))
     unsettled = not accept_unconverged and bool(np.any(unconverged))
     if unsettled:
         uncertain = uncertain | (missing & unconverged)
@@ -183,7 +202,7 @@ def assign(
         "flag_values": FLAG_VALUES.copy(),
         "flag_meanings": " ".join(FLAG_MEANINGS),
         "comment": _rules_text(level, max_width, max_rel_width, gap_limit, min_observed,
-                               unsettled),
+                               unsettled, tested_gap if untested else None),
     }
     return out
 
@@ -283,6 +302,7 @@ def _rules_text(
     max_gap: pd.Timedelta | None,
     min_observed: int,
     unsettled: bool,
+    tested_gap: int | None,
 ) -> str:
     rules = [f"not_filled: series with fewer than {min_observed} observations"]
     if max_width is not None:
@@ -294,6 +314,9 @@ def _rules_text(
         )
     if max_gap is not None:
         rules.append(f"filled_uncertain: in a missing run longer than {max_gap}")
+    if tested_gap is not None:
+        rules.append(f"filled_uncertain: in a missing run longer than the {tested_gap} steps "
+                     "the calibration's holdout tested")
     if unsettled:
         rules.append("filled_uncertain: from a fit whose chains did not converge")
     return "; ".join(rules)

@@ -3,14 +3,25 @@
 :func:`mask` hides observed cells in a pattern like real gaps; :func:`run`
 refits the model on each masked Panel (K repeats), in one fit or block by
 block (:mod:`gapband.parallel`), scores the hidden cells with the model's
-predictive draws and with the baselines (:mod:`gapband.baselines`), and
-derives per-level widening factors (:func:`widening_factor`) that
+predictive draws and with the baselines (:mod:`gapband.baselines`), states
+per gap-length bucket how much evidence there is, and derives widening
+factors per level and bucket (:func:`gapband.calibration.derive`) that
 ``gapband fill --calibration`` applies. :func:`write` saves the report as
 ``holdout.json``.
 
 Masking schemes (only observed cells are hidden; series with fewer than
 ``min_observed`` observations are never filled, so never scored):
 
+- ``gaps``: contiguous runs whose lengths are drawn from the Panel's own
+  interior gaps, bucket by bucket (:data:`gapband.panel.GAP_BINS`), longest
+  bucket first and each bucket's longest gap first. Of ``fraction ×
+  observed`` hidden cells, each bucket that holds real gaps gets its share
+  of the real missing cells, but at least an equal part. A run goes into a
+  series with one observation (or the record's end) free on each side, so
+  it keeps its drawn length, and no series loses more than
+  :data:`SERIES_SHARE` of its observations. While a bucket holds fewer than
+  :data:`gapband.calibration.THIN_BUCKET` scored cells, :func:`run` adds
+  repeats (up to ``max_repeats``) and says so.
 - ``random``: ``round(fraction × observed)`` cells of each series, uniformly.
 - ``blocks``: contiguous runs with lengths drawn from the series' own
   interior gaps (gaps touching the record's ends are left out: they are
@@ -28,7 +39,6 @@ from __future__ import annotations
 
 import dataclasses
 import logging
-import math
 import time
 from collections.abc import Callable, Sequence
 from pathlib import Path
@@ -39,10 +49,17 @@ import pandas as pd
 import xarray as xr
 
 from gapband import baselines, outputs, scores
-from gapband.errors import FitError, InputError, UsageError
-from gapband.filling import (
+from gapband.calibration import (
+    BUCKETS,
     CALIBRATION_FORMAT,
     CALIBRATION_VERSION,
+    THIN_BUCKET,
+    bucket_of,
+    derive,
+    spec_sha256,
+)
+from gapband.errors import FitError, InputError, UsageError
+from gapband.filling import (
     DEFAULT_KEEP_DRAWS,
     FillOptions,
     Fitted,
@@ -53,7 +70,7 @@ from gapband.filling import (
     versions,
 )
 from gapband.flags import MIN_OBSERVED
-from gapband.panel import GAP_BINS, gap_runs, run_lengths
+from gapband.panel import gap_runs, run_lengths
 from gapband.spec import ModelSpec
 
 if TYPE_CHECKING:
@@ -61,9 +78,15 @@ if TYPE_CHECKING:
 
 log = logging.getLogger(__name__)
 
-Scheme = Literal["random", "blocks", "outage"]
-SCHEMES: tuple[str, ...] = ("random", "blocks", "outage")
+Scheme = Literal["gaps", "random", "blocks", "outage"]
+SCHEMES: tuple[str, ...] = ("gaps", "random", "blocks", "outage")
+DEFAULT_SCHEME: Scheme = "gaps"
 DEFAULT_FRACTION = 0.2
+#: Repeats (fits) the ``gaps`` scheme may run in all to fill its buckets.
+DEFAULT_MAX_REPEATS = 3
+#: Largest share of a series' observations the ``gaps`` scheme hides: the
+#: series keeps most of its own record to be fitted from.
+SERIES_SHARE = 0.5
 
 #: Mean length in steps of the fallback block distribution (geometric), used
 #: when no series of the Panel has an interior gap to learn lengths from.
@@ -73,10 +96,6 @@ DEFAULT_MAX_BLOCK = 60
 
 #: Hidden cells whose predictive draws are held in memory at a time.
 CHUNK_CELLS = 4096
-
-#: A widening factor is stored this much (relatively) above the conformity
-#: score that sets it, so that cell stays inside after floating-point rounding.
-FACTOR_MARGIN = 1e-9
 
 PREDICTOR = "gapband"
 
@@ -92,7 +111,7 @@ class Mask:
 def mask(
     panel: xr.Dataset,
     *,
-    scheme: Scheme = "random",
+    scheme: Scheme = DEFAULT_SCHEME,
     fraction: float = DEFAULT_FRACTION,
     seed: int = 0,
     repeat: int = 0,
@@ -104,10 +123,11 @@ def mask(
     ----------
     panel : Dataset
         A Panel.
-    scheme : {"random", "blocks", "outage"}
+    scheme : {"gaps", "random", "blocks", "outage"}
     fraction : float
-        Share of each series' observed cells to hide (random, blocks), or
-        share of the record the outage window spans; in (0, 1).
+        Share of each series' observed cells to hide (gaps: of all scored
+        series' together; random, blocks: of each), or share of the record
+        the outage window spans; in (0, 1).
     seed, repeat : int
         The mask is a function of both: the same pair gives the same mask.
     min_observed : int
@@ -139,6 +159,8 @@ def mask(
     if scheme == "outage":
         hidden, details = _outage(panel, observed, scored, fraction, seed, repeat,
                                   min_observed, rng)
+    elif scheme == "gaps":
+        hidden, details = _gaps(panel, observed, scored, fraction, min_observed, rng)
     else:
         targets = _targets(panel, n_observed, scored, fraction, min_observed)
         if scheme == "random":
@@ -149,50 +171,16 @@ def mask(
                 details)
 
 
-def widening_factor(y: np.ndarray, median: np.ndarray, lower: np.ndarray, upper: np.ndarray,
-                    level: float) -> float | None:
-    """The split-conformal factor on half-widths around the median that covers ``level`` %.
-
-    Each cell's conformity score is how many half-widths it lies from the
-    median, on its own side: ``(median - y) / (median - lower)`` below,
-    ``(y - median) / (upper - median)`` above. The factor is the
-    ``ceil((n + 1) × level / 100)``-th smallest of the n scores — the
-    smallest factor that covers at least ``level`` % of these cells, raised
-    to the finite-sample conformal quantile so that, for a new cell
-    exchangeable with them, coverage is at least ``level`` %.
-
-    Returns
-    -------
-    float or None
-        None when n is too small for the level (fewer than about
-        ``level / (100 - level)`` cells).
-    """
-    ratio = conformity(y, median, lower, upper)
-    n = ratio.size
-    rank = math.ceil((n + 1) * level / 100 - 1e-9)
-    if rank > n or n == 0:
-        return None
-    return float(np.partition(ratio, rank - 1)[rank - 1]) * (1 + FACTOR_MARGIN)
-
-
-def conformity(y: np.ndarray, median: np.ndarray, lower: np.ndarray,
-               upper: np.ndarray) -> np.ndarray:
-    """Distance of ``y`` from the median in half-widths of its side (inf on a zero half-width)."""
-    below = y < median
-    half = np.where(below, median - lower, upper - median)
-    distance = np.abs(y - median)
-    return np.divide(distance, half, out=np.where(distance > 0, np.inf, 0.0), where=half > 0)
-
-
 def run(
     panel: xr.Dataset,
     *,
     model: str | Path | ModelSpec | None = None,
     transform: str | None = None,
     options: FillOptions | None = None,
-    scheme: Scheme = "random",
+    scheme: Scheme = DEFAULT_SCHEME,
     fraction: float = DEFAULT_FRACTION,
     repeats: int = 1,
+    max_repeats: int = DEFAULT_MAX_REPEATS,
     baseline_names: Sequence[str] = baselines.DEFAULT_NAMES,
     plan: BlockPlan | None = None,
     runner: Runner | None = None,
@@ -210,6 +198,11 @@ def run(
         See :func:`mask`.
     repeats : int
         Masks (and refits) to pool the scores over.
+    max_repeats : int
+        ``gaps`` only: while a gap-length bucket with real gaps holds fewer
+        than :data:`gapband.calibration.THIN_BUCKET` scored cells and the
+        last repeat added some, further repeats run, up to this many in all
+        (recorded under ``evidence``).
     baseline_names : sequence of str
         Baselines to score on the same cells: any of "linear", "seasonal",
         "kalman", "dfm" (default: all but "dfm").
@@ -243,9 +236,10 @@ def run(
     options = options or FillOptions()
     levels = check_levels(tuple(options.levels))
     _check_scheme(scheme, fraction)
-    if isinstance(repeats, bool) or not isinstance(repeats, int) or repeats < 1:
-        raise UsageError(f"repeats = {repeats!r} must be a whole number of at least 1 "
-                         "(--repeats)")
+    for name, number in (("repeats", repeats), ("max_repeats", max_repeats)):
+        if isinstance(number, bool) or not isinstance(number, int) or number < 1:
+            raise UsageError(f"{name} = {number!r} must be a whole number of at least 1 "
+                             f"(--{name.replace('_', '-')})")
     unknown = [name for name in baseline_names if name not in baselines.NAMES]
     if unknown:
         raise UsageError(f"unknown baseline {unknown[0]!r}; choose from "
@@ -264,11 +258,21 @@ def run(
              repeats, "" if plan is None else f", {len(plan.blocks)} blocks each", spec_label)
     truth = panel["value"].transpose("series", "time").values
     n_time = panel.sizes["time"]
+    real = _real_gaps(panel, options.rules.min_observed)
     predictors = (PREDICTOR, *baseline_names)
     pooled: dict[str, list[dict]] = {name: [] for name in predictors}
-    positions: list[tuple[np.ndarray, np.ndarray]] = []
+    # per repeat: scored cells' series, missing-run length and run id
+    positions: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
     repeat_records = []
-    for repeat in range(repeats):
+    for repeat in range(max(repeats, max_repeats) if scheme == "gaps" else repeats):
+        have = np.bincount(bucket_of(np.concatenate([r for _, r, _ in positions])),
+                           minlength=len(BUCKETS)) if positions else np.zeros(len(BUCKETS), int)
+        short = [label for b, label in enumerate(BUCKETS)
+                 if real[label]["cells"] and have[b] < THIN_BUCKET]
+        # More repeats only while a short bucket still gains cells from them.
+        if repeat >= repeats and not any(
+                repeat_records[-1]["scored_by_gap_length"].get(label) for label in short):
+            break
         hidden = mask(panel, scheme=scheme, fraction=fraction, seed=options.seed, repeat=repeat,
                       min_observed=options.rules.min_observed)
         masked = panel.copy()
@@ -288,37 +292,47 @@ def run(
         y = truth[series, steps]
         rows = pd.Index(to_fit["series"].values).get_indexer(panel["series"].values)
         cells = rows[series] * n_time + steps
-        repeat_records.append(_repeat_record(panel, repeat, hidden, refit))
+        missing_after = np.isnan(masked["value"].transpose("series", "time").values)
+        runs = run_lengths(missing_after)
+        scored_cells = np.bincount(bucket_of(runs[series, steps]), minlength=len(BUCKETS))
+        repeat_records.append({
+            **_repeat_record(panel, repeat, hidden, refit),
+            "scored_by_gap_length": {label: int(n) for label, n in zip(
+                BUCKETS, scored_cells, strict=True) if n},
+            "short_before": short})
         if y.size:
             pooled[PREDICTOR].append(
                 _model_scores(fitted, y, cells, levels, options.seed + repeat) if plan is None
                 else _kept_scores(result, y, series * n_time + steps, levels))
             for name in baseline_names:
                 pooled[name].append(_baseline_scores(name, to_fit, spec, y, cells, levels))
-            runs = run_lengths(np.isnan(masked["value"].transpose("series", "time").values))
-            positions.append((series, runs[series, steps]))
-        log.info("repeat %d of %d: %d cells hidden, %d scored", repeat + 1, repeats,
+            positions.append((series, runs[series, steps],
+                              _run_ids(missing_after)[series, steps] + repeat * truth.size))
+        log.info("repeat %d: %d cells hidden, %d scored", repeat + 1,
                  repeat_records[-1]["hidden_total"], y.size)
     if not positions:
         raise FitError("no hidden cell of any repeat was filled: the blocks that hold them "
                        "failed or were skipped (their errors are in the log); fix the cause, "
                        "use larger blocks, or run the holdout without blocks")
 
-    series = np.concatenate([s for s, _ in positions])
-    runs = np.concatenate([r for _, r in positions])
+    series = np.concatenate([s for s, _, _ in positions])
+    runs = np.concatenate([r for _, r, _ in positions])
+    run_ids = np.concatenate([i for _, _, i in positions])
     groups = {
         "series": (series, [str(s) for s in panel["series"].values]),
-        "gap_length": (_bucket(runs), [label for label, _, _ in GAP_BINS]),
+        "gap_length": (bucket_of(runs), list(BUCKETS)),
     }
     cells_of = {name: {k: np.concatenate([part[k] for part in parts]) for k in parts[0]}
                 for name, parts in pooled.items()}
     observed = ~np.isnan(truth)
     not_scored = observed.sum(axis=1) < options.rules.min_observed
     settings = {
-        "scheme": scheme, "fraction": fraction, "repeats": repeats, "seed": options.seed,
+        "scheme": scheme, "fraction": fraction, "repeats": repeats,
+        "max_repeats": max_repeats, "seed": options.seed,
         "method": options.method, "draws": options.draws, "tune": options.tune,
         "chains": options.chains, "levels": list(levels),
         "min_observed": options.rules.min_observed, "spec": spec_label,
+        "transform": spec.transform, "spec_sha256": spec_sha256(spec),
         "spec_detail": spec.to_dict(), "baselines": list(baseline_names),
     }
     if plan is not None:
@@ -335,6 +349,8 @@ def run(
         "settings": settings,
         "repeats": repeat_records,
         "series_not_scored": [str(s) for s in panel["series"].values[not_scored]],
+        "evidence": evidence(real, bucket_of(runs), run_ids, int(runs.max()), repeats,
+                             repeat_records),
         "scores": {name: scores.breakdown(cells_of[name], levels, groups)
                    for name in predictors},
         "pit_histogram": {
@@ -342,37 +358,47 @@ def run(
             **{name: scores.pit_histogram(cells["pit"]) for name, cells in cells_of.items()
                if "pit" in cells},
         },
-        "widening": widening(cells_of[PREDICTOR], levels),
+        "widening": derive(cells_of[PREDICTOR], bucket_of(runs), run_ids, levels),
         "seconds": round(time.perf_counter() - started, 2),
         "versions": versions(),
     }
 
 
-def widening(cells: dict, levels: Sequence[float]) -> dict:
-    """Widening factors per level from the model's per-cell scores, with coverage before and after.
+def evidence(real: dict, bucket: np.ndarray, run_id: np.ndarray, longest_tested: int,
+             repeats: int, records: Sequence[dict]) -> dict:
+    """How much holdout evidence each gap-length bucket has, against the real gaps it stands for.
 
-    ``coverage_after`` is measured on the same cells the factors come from,
-    so it meets the level by construction; the guarantee for real gaps rests
-    on their exchangeability with the hidden cells.
+    ``real``: the Panel's gaps per bucket (runs, cells, longest); ``bucket``
+    and ``run_id``: each scored hidden cell's bucket index and hidden run;
+    ``records``: the repeats run, of which the first ``repeats`` were asked for.
+
+    A bucket's status: ``tested`` (at least :data:`THIN_BUCKET` scored
+    cells), ``thin`` (fewer; its factor pools neighbours' cells), ``untested``
+    (real gaps but no scored cell: its fills rest on other buckets' evidence),
+    or ``no gaps`` (neither).
     """
-    truth, median = cells["truth"], cells["point"]
-    factors, before, after = {}, {}, {}
-    for level in levels:
-        key = scores.level_key(level)
-        lower, upper = cells[f"lower_{key}"], cells[f"upper_{key}"]
-        factor = widening_factor(truth, median, lower, upper, level)
-        factors[key] = factor
-        before[key] = float(np.mean(cells[f"covered_{key}"]))
-        after[key] = None if factor is None else float(np.mean(scores.covered(
-            truth, median - factor * (median - lower), median + factor * (upper - median))))
+    scored = np.bincount(bucket, minlength=len(BUCKETS))
+    buckets = {}
+    for b, label in enumerate(BUCKETS):
+        n = int(scored[b])
+        status = ("tested" if n >= THIN_BUCKET else "thin" if n else
+                  "untested" if real[label]["cells"] else "no gaps")
+        buckets[label] = {"real_gaps": real[label]["runs"], "real_cells": real[label]["cells"],
+                          "hidden_runs": int(np.unique(run_id[bucket == b]).size),
+                          "hidden_cells": n,
+                          "status": status}
+    extra = len(records) - repeats
     return {
-        "levels": list(levels),
-        "factors": factors,
-        "coverage_before": before,
-        "coverage_after": after,
-        "n_cells": int(truth.size),
-        "rule": "split conformal: the ceil((n+1) level/100)-th smallest distance from the "
-                "median in half-widths of its side, over all hidden cells of all repeats",
+        "target_cells": THIN_BUCKET,
+        "buckets": buckets,
+        "untested": [label for label, rec in buckets.items() if rec["status"] == "untested"],
+        "longest_real_steps": max((rec["longest"] for rec in real.values()), default=0),
+        "longest_tested_steps": longest_tested,
+        "repeats_run": len(records),
+        "extra_repeats": extra,
+        "note": (f"{extra} repeat(s) added: after {repeats}, gaps of "
+                 f"{', '.join(records[repeats]['short_before'])} steps had fewer than "
+                 f"{THIN_BUCKET} scored hidden cells" if extra > 0 else None),
     }
 
 
@@ -493,6 +519,106 @@ def _block_starts(open_cells: np.ndarray, length: int) -> np.ndarray:
     total = np.concatenate(([0], np.cumsum(padded)))
     window = length + 2
     return np.flatnonzero(total[window:] - total[:-window] == window)
+
+
+def _gaps(panel: xr.Dataset, observed: np.ndarray, scored: np.ndarray, fraction: float,
+          min_observed: int, rng: np.random.Generator) -> tuple[np.ndarray, dict]:
+    """Hide runs drawn from the Panel's interior gap lengths, bucket by bucket, longest first."""
+    n_time = observed.shape[1]
+    lengths = np.array([length for _, start, length in gap_runs(~observed[scored])
+                        if start > 0 and start + length < n_time], dtype="int64")
+    if lengths.size:
+        values, weights = np.unique(lengths, return_counts=True)
+        source = "panel"
+    else:
+        values = np.arange(1, DEFAULT_MAX_BLOCK + 1)
+        p = 1 / DEFAULT_MEAN_BLOCK
+        weights = p * (1 - p) ** (values - 1)
+        source = "default"
+    code = bucket_of(values)
+    n_observed = observed.sum(axis=1)
+    total = int(np.floor(fraction * n_observed[scored].sum() + 0.5))
+    share = np.bincount(code, weights=weights * values, minlength=len(BUCKETS))
+    share = share / share.sum()
+    # Each bucket with gaps gets at least an equal part of the pass, so a rare
+    # bucket (a few long outages among many short gaps) is tested too.
+    share = np.where(share > 0, np.maximum(share, 1 / np.count_nonzero(share)), 0.0)
+    share = share / share.sum()
+    room = np.zeros(observed.shape[0], dtype="int64")
+    room[scored] = np.minimum(n_observed[scored] - min_observed,
+                              np.floor(SERIES_SHARE * n_observed[scored]).astype("int64"))
+    hidden = np.zeros_like(observed)
+    targets, placed = {}, {}
+    for b in sorted(set(code.tolist()), reverse=True):
+        label = BUCKETS[b]
+        target = max(int(np.floor(share[b] * total + 0.5)), 1)
+        targets[label] = target
+        placed[label] = _place_bucket(observed, hidden, room, values[code == b],
+                                      weights[code == b], target, rng)
+    shortfall = {label: targets[label] - n for label, n in placed.items() if n < targets[label]}
+    if not hidden.any():
+        raise InputError(
+            f"{panel.attrs.get('source', 'input')}: no series has a run of observations long "
+            "enough to hide a gap like its real ones in; use --scheme random")
+    return hidden, {"lengths_from": source, "targets": targets, "hidden_by_gap_length": placed,
+                    "shortfall": shortfall}
+
+
+def _place_bucket(observed: np.ndarray, hidden: np.ndarray, room: np.ndarray,
+                  lengths: np.ndarray, weights: np.ndarray, target: int,
+                  rng: np.random.Generator) -> int:
+    """Hide runs of one bucket's lengths (its longest first) until ``target`` cells; in place.
+
+    A run goes into a random series with ``room`` for it and a free stretch
+    (:func:`_block_starts`); ``hidden`` and ``room`` are updated.
+    """
+    fits = np.ones(lengths.size, dtype=bool)
+    unfit: set[tuple[int, int]] = set()
+    count = 0
+    first = True
+    while count < target and fits.any():
+        if first:  # the bucket's longest real gap is tried first, so it is always tested
+            k, first = int(lengths.argmax()), False
+        else:
+            chance = weights * fits
+            k = int(rng.choice(lengths.size, p=chance / chance.sum()))
+        length = int(lengths[k])
+        hosts = [n for n in rng.permutation(np.flatnonzero(room >= length)).tolist()
+                 if (n, length) not in unfit]
+        for n in hosts:
+            starts = _block_starts(observed[n] & ~hidden[n], length)
+            if starts.size:
+                start = int(rng.choice(starts))
+                hidden[n, start : start + length] = True
+                room[n] -= length
+                count += length
+                break
+            unfit.add((n, length))  # only more cells get hidden: it will not fit later either
+        else:
+            fits[k] = False
+    return count
+
+
+def _real_gaps(panel: xr.Dataset, min_observed: int) -> dict:
+    """Per gap-length bucket, the real missing runs of the series a fill fills: runs, cells."""
+    missing = panel["value"].transpose("series", "time").isnull().values
+    filled = (~missing).sum(axis=1) >= min_observed
+    found = {label: {"runs": 0, "cells": 0, "longest": 0} for label in BUCKETS}
+    for n, _, length in gap_runs(missing):
+        if filled[n]:
+            record = found[BUCKETS[int(bucket_of(np.array([length]))[0])]]
+            record["runs"] += 1
+            record["cells"] += length
+            record["longest"] = max(record["longest"], length)
+    return found
+
+
+def _run_ids(missing: np.ndarray) -> np.ndarray:
+    """An id per missing run (a flat index of its first cell), at each of its cells."""
+    ids = np.full(missing.shape, -1, dtype="int64")
+    for n, start, length in gap_runs(missing):
+        ids[n, start : start + length] = n * missing.shape[1] + start
+    return ids
 
 
 def _outage(panel: xr.Dataset, observed: np.ndarray, scored: np.ndarray, fraction: float,
@@ -616,9 +742,3 @@ def _fit_record(fitted: Fitted) -> dict:
         "converged": diagnostics.get("converged"),
         "warnings": diagnostics.get("warnings", []),
     }
-
-
-def _bucket(run_length: np.ndarray) -> np.ndarray:
-    """Index of each run length's bin in :data:`gapband.panel.GAP_BINS`."""
-    uppers = np.array([hi for _, _, hi in GAP_BINS])
-    return np.searchsorted(uppers, run_length, side="left")

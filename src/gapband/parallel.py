@@ -42,14 +42,16 @@ from scipy.cluster import hierarchy
 from scipy.spatial.distance import squareform
 
 from gapband import flags
+from gapband.calibration import Calibration
 from gapband.errors import FitError, GapbandError, InputError, UsageError
 from gapband.filling import (
     FillOptions,
     check_levels,
+    checked_calibration,
     fill,
     fittable,
     observed_unchanged,
-    read_calibration,
+    real_gap_length,
     record_run,
     resolve_spec,
 )
@@ -448,14 +450,16 @@ class BlockJob:
     n_time: int
     spec: ModelSpec
     options: FillOptions
-    calibration: str | None
+    calibration: Calibration | None
+    #: Length of the whole Panel's missing run each cell of the block sits in.
+    gap_length: xr.DataArray
 
     def __call__(self, attempt: int = 1) -> BlockOutcome:
         """Fill the block and keep its core; an exception is returned, not raised."""
         started = time.perf_counter()
         try:
             result, summary = fill(self.panel, model=self.spec, options=self.options,
-                                   calibration=self.calibration)
+                                   calibration=self.calibration, gap_length=self.gap_length)
             core, draws = self._core(result)
         except Exception as exc:  # reported by name; the other blocks go on
             return self.failed(attempt, exc, time.perf_counter() - started)
@@ -646,9 +650,9 @@ def fill_blocks(
     levels = check_levels(tuple(options.levels))
     spec, spec_label = resolve_spec(panel, model, transform)
     plan.check(panel, spec)
-    widening = None if calibration is None else read_calibration(calibration)
-    if widening is not None:
-        widening.check(options.method, levels)
+    widening, calibration_warning = (None, None) if calibration is None else \
+        checked_calibration(calibration, panel, spec, options.method, levels)
+    gap_length = real_gap_length(panel)
     if options.rank is None:
         options = dataclasses.replace(
             options, rank=whole_panel_rank(panel, spec, options.rules.min_observed))
@@ -665,18 +669,22 @@ def fill_blocks(
         sub.attrs = {**panel.attrs, "source": f"{panel.attrs.get('source', 'input')}, "
                                               f"block {block.name}"}
         block_options = dataclasses.replace(options, seed=options.seed + i, progress=False)
-        jobs.append(BlockJob(block, sub, panel.sizes["time"], spec, block_options,
-                             None if calibration is None else str(calibration)))
+        jobs.append(BlockJob(block, sub, panel.sizes["time"], spec, block_options, widening,
+                             gap_length.isel(series=rows, time=slice(start, stop))))
         positions.append(i)
     ran = _run(runner, jobs, options.progress) if jobs else []
     outcomes |= dict(zip(positions, ran, strict=True))
     ordered = [outcomes[i] for i in range(len(blocks))]
     _raise_if_none_filled(ordered, options.rules.min_observed)
     merge_started = time.perf_counter()
-    result = _merge(panel, blocks, ordered, options)
+    result = _merge(panel, blocks, ordered, options,
+                    None if widening is None else widening.longest_tested)
     filled = [o for o in ordered if o.status == "filled"]
+    diagnostics = _pooled_diagnostics(ordered)
+    if calibration_warning is not None:
+        diagnostics["warnings"] = [*diagnostics["warnings"], calibration_warning]
     summary = record_run(result, panel, spec, spec_label, options, levels, options.method,
-                         _pooled_diagnostics(ordered), widening, timings={
+                         diagnostics, widening, timings={
         "blocks_wall_s": round(merge_started - started, 2),
         "fit_total_s": round(sum(o.summary["timings"]["fit_total_s"] for o in filled), 2),
         "predict_s": round(sum(o.summary["timings"]["predict_s"] for o in filled), 2),
@@ -743,7 +751,7 @@ def _raise_if_none_filled(outcomes: list[BlockOutcome], min_observed: int) -> No
 
 
 def _merge(panel: xr.Dataset, blocks: list[Block], outcomes: list[BlockOutcome],
-           options: FillOptions) -> xr.Dataset:
+           options: FillOptions, tested_gap: int | None) -> xr.Dataset:
     """The blocks' cores put together on the Panel, flags recomputed, observed cells kept."""
     filled = [(b, o) for b, o in zip(blocks, outcomes, strict=True) if o.status == "filled"]
     template = filled[0][1].core
@@ -772,7 +780,8 @@ def _merge(panel: xr.Dataset, blocks: list[Block], outcomes: list[BlockOutcome],
     if "component_offset" in template:
         result["component_offset"] = ("series", offset, template["component_offset"].attrs)
     result = flags.assign(result, **dataclasses.asdict(options.rules),
-                          unconverged=xr.DataArray(unconverged, dims=("series", "time")))
+                          unconverged=xr.DataArray(unconverged, dims=("series", "time")),
+                          tested_gap=tested_gap)
     if not observed_unchanged(panel, result):  # a guard on our own code, never expected
         raise GapbandError("internal error: an observed value changed while merging blocks")
     parts = [o.draws for _, o in filled if o.draws is not None]

@@ -12,8 +12,8 @@ package on PyPI), 3 airports (EWR, JFK, LGA) × temp, dewp, humid, pressure:
   with their real gaps;
 - ``daily``: the daily means of the whole record (2013-01-01 to 2013-12-30).
 
-For each panel and mask scheme (``random`` and ``blocks``, 20 % of each
-series' observed cells):
+For each panel and mask scheme (``gaps``, ``random`` and ``blocks``, 20 % of
+the observed cells):
 
 1. **Calibration split** (seed 0): :func:`gapband.holdout.run` with the
    baselines ``linear``, ``kalman`` and ``dfm`` — coverage of gapband's
@@ -21,11 +21,13 @@ series' observed cells):
    widening factors, written as ``holdout.json``.
 2. **Fresh split** (seed 1): another mask (:func:`gapband.holdout.mask`),
    filled with :func:`gapband.fill`; the factors of split 1 are applied as
-   ``gapband fill --calibration`` applies them (:func:`gapband.filling.widen`),
-   and coverage is measured on the cells of this split, before and after.
+   ``gapband fill --calibration`` applies them (:func:`gapband.calibration.widen`,
+   each cell the factor of its gap-length bucket), and coverage is measured on
+   the cells of this split, before and after.
 
 Columns: cells hidden in each split; coverage at 50/80/90/95 % (split 1
-before widening; split 2 before and after); the largest |after − nominal|
+before widening; split 2 before and after); the factors per level (lowest
+and highest over the gap-length buckets); the largest |after − nominal|
 in percentage points; MAE of gapband and linear interpolation and how much
 lower gapband's is; CRPS of gapband, the dynamic factor model and the
 Kalman smoother and how much lower gapband's is than each (split 1). Run
@@ -48,11 +50,11 @@ import pandas as pd
 import xarray as xr
 
 import gapband
-from gapband import filling, holdout, scores
+from gapband import calibration, filling, holdout, scores
 from gapband.panel import make_panel
 
 LEVELS = (50, 80, 90, 95)
-SCHEMES = ("random", "blocks")
+SCHEMES = ("gaps", "random", "blocks")
 BASELINES = ("linear", "kalman", "dfm")
 FRACTION = 0.2
 CALIBRATION_SEED, FRESH_SEED = 0, 1
@@ -93,7 +95,8 @@ def fresh_split(panel: xr.Dataset, scheme: str, calibration_file: Path,
     masked = panel.copy()
     masked["value"] = panel["value"].where(~hidden)
     result, _ = gapband.fill(masked, options=options)
-    widened = filling.widen(result, filling.read_calibration(calibration_file), LEVELS)
+    widened = calibration.widen(result, calibration.read(calibration_file), LEVELS,
+                                filling.real_gap_length(masked))
     cells = hidden.transpose("series", "time").values
     truth = panel["value"].transpose("series", "time").values[cells]
 
@@ -147,7 +150,9 @@ def row(panel_name: str, scheme: str, m: dict) -> list[str]:
     deviation = {level: 100 * abs(m["fresh"]["after"][level] - level / 100) for level in LEVELS}
     return [
         panel_name, scheme, f"{m['n'][0]}/{m['n'][1]}",
-        levels(m["before"]), "/".join(f"{m['factors'][lv]:.2f}" for lv in LEVELS),
+        levels(m["before"]), "/".join(
+            f"{min(m['factors'][lv].values()):.2f}-{max(m['factors'][lv].values()):.2f}"
+            for lv in LEVELS),
         levels(m["fresh"]["before"]), levels(m["fresh"]["after"]),
         "/".join(f"{deviation[lv]:.1f}" for lv in LEVELS),
         f"{m['mae']['gapband']:.3f}", f"{m['mae']['linear']:.3f}",

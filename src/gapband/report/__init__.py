@@ -19,6 +19,7 @@ import numpy as np
 import pandas as pd
 
 from gapband import outputs
+from gapband.calibration import CALIBRATION_FORMAT, CALIBRATION_VERSION
 from gapband.errors import InputError
 from gapband.flags import FLAG_MEANINGS
 from gapband.report import content
@@ -126,9 +127,13 @@ def _read_holdout(folder: Path, given: str | Path | None) -> dict | None:
     except (OSError, ValueError) as exc:
         raise InputError(f"cannot read holdout file {str(path)!r} ({exc}); give the "
                          "holdout.json written by gapband holdout") from exc
-    if not isinstance(report, dict) or report.get("format") != "gapband holdout":
+    if not isinstance(report, dict) or report.get("format") != CALIBRATION_FORMAT:
         raise InputError(f"{str(path)!r} is not a gapband holdout file; give the holdout.json "
                          "written by gapband holdout")
+    if report.get("format_version") != CALIBRATION_VERSION:
+        raise InputError(f"holdout file {str(path)!r} has format_version "
+                         f"{report.get('format_version')!r}; this gapband reports version "
+                         f"{CALIBRATION_VERSION} (evidence by gap length): rerun gapband holdout")
     return report
 
 

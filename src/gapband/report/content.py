@@ -105,6 +105,9 @@ def rule_rows(rules: dict) -> list[tuple[str, str]]:
         rows.append(("gap longer than", str(rules["max_gap"])))
     if rules.get("min_observed") is not None:
         rows.append(("not filled below", f"{rules['min_observed']} observations of a series"))
+    if rules.get("flag_untested"):
+        rows.append(("gap longer than", "the longest gap length its holdout tested "
+                     "(with a calibration)"))
     if "accept_unconverged" in rules:
         rows.append(("fit not converged", "kept as filled" if rules["accept_unconverged"]
                      else "flagged uncertain"))
@@ -133,9 +136,10 @@ def provenance(result: xr.Dataset, summary: dict) -> dict:
         ],
         "rules": rule_rows(summary.get("flag_rules") or {}),
         "calibration": None if calibration is None else [
-            (f"{level} %", f"{float(factor):.3f}")
-            for level, factor in calibration.get("factors", {}).items()],
-        "calibration_source": None if calibration is None else calibration.get("path"),
+            (f"{level} %", "; ".join(f"{bucket} steps: " + ("–" if f is None else f"{f:.3f}")
+                                     for bucket, f in by_bucket.items()))
+            for level, by_bucket in calibration.get("factors", {}).items()],
+        "calibration_source": None if calibration is None else calibration.get("file"),
         "diagnostics": [(key, _text(value)) for key, value in diagnostics.items()
                         if key != "warnings"],
         "warnings": list(diagnostics.get("warnings", [])),
@@ -337,7 +341,6 @@ def holdout(report: dict, input_sha256: str | None) -> dict:
     coverage = {name: o["coverage"] for name, o in overall.items() if o.get("coverage")}
     pit = {name: counts for name, counts in report.get("pit_histogram", {}).items()
            if name != "bins"}
-    gapband = report["scores"].get("gapband", {})
     return {
         "settings": settings,
         "same_input": report.get("input_sha256") == input_sha256,
@@ -345,7 +348,8 @@ def holdout(report: dict, input_sha256: str | None) -> dict:
         "levels": levels,
         "coverage": coverage,
         "scores": overall,
-        "by_gap_length": gapband.get("gap_length", {}),
+        "by_gap_length": _by_gap_length(report),
+        "evidence": report["evidence"],
         "widening": report["widening"],
         "reliability": figures.reliability(coverage) if coverage else None,
         "pit": figures.pit(pit) if pit else None,
@@ -373,6 +377,23 @@ def _step_words(step: str) -> str:
     """A grid step code in words ('h' -> 'hourly')."""
     return {"h": "hourly", "D": "daily", "30min": "half-hourly", "MS": "monthly",
             "M": "monthly", "W": "weekly"}.get(step, f"every {step}" if step else "")
+
+
+def _by_gap_length(report: dict) -> list[dict]:
+    """Rows of the evidence-by-gap-length table: buckets with real gaps or hidden cells."""
+    rows = []
+    for label, record in report["evidence"]["buckets"].items():
+        if not record["real_cells"] and not record["hidden_cells"]:
+            continue
+        scored = {name: block["gap_length"].get(label) for name, block in
+                  report["scores"].items()}
+        rows.append({
+            "bucket": label, **record,
+            "coverage": (scored.get("gapband") or {}).get("coverage") or {},
+            "score": {name: s["crps"] if s["crps"] is not None else s["mae"]
+                      for name, s in scored.items() if s is not None},
+        })
+    return rows
 
 
 def _stamp(t: np.datetime64) -> str:
