@@ -78,7 +78,7 @@ def render(
         "series": content.series_figures(result, units),
         "flags": content.flag_counts(summary),
         "stats": content.period_statistics(result, period),
-        "holdout": (content.holdout(holdout_report, summary.get("input_sha256"))
+        "holdout": (content.holdout(holdout_report, summary.get("input_sha256"), units)
                     if holdout_report else None),
         "units": units,
         "method": method,
@@ -142,6 +142,7 @@ def _template() -> jinja2.Template:
                              trim_blocks=True, lstrip_blocks=True)
     env.filters["num"] = _number
     env.filters["pct"] = lambda v: _number(v, ".1f")
+    env.filters["share"] = lambda v: _number(None if v is None else 100.0 * v, ".1f")
     text = files("gapband.report").joinpath("template.html.j2").read_text(encoding="utf-8")
     return env.from_string(text)
 

@@ -333,7 +333,7 @@ def period_statistics(result: xr.Dataset, period: str | None) -> dict:
     }
 
 
-def holdout(report: dict, input_sha256: str | None) -> dict:
+def holdout(report: dict, input_sha256: str | None, units: str = "") -> dict:
     """The calibration evidence of a ``holdout.json``: tables and figures."""
     settings = report["settings"]
     levels = [f"{lv:g}" for lv in settings["levels"]]
@@ -353,7 +353,7 @@ def holdout(report: dict, input_sha256: str | None) -> dict:
         "widening": report["widening"],
         "reliability": figures.reliability(coverage) if coverage else None,
         "pit": figures.pit(pit) if pit else None,
-        "bars": figures.score_bars(overall),
+        "bars": figures.score_bars(overall, units),
     }
 
 

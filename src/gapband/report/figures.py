@@ -158,8 +158,8 @@ def pit(histograms: dict[str, list[int]]) -> str:
         return png(fig)
 
 
-def score_bars(scores: dict[str, dict[str, float | None]]) -> str:
-    """CRPS and MAE per predictor, side by side (smaller is better)."""
+def score_bars(scores: dict[str, dict[str, float | None]], units: str = "") -> str:
+    """CRPS and MAE per predictor, side by side (smaller is better), in ``units``."""
     names = list(scores)
     with plt.rc_context(STYLE):
         fig, axes = plt.subplots(1, 2, figsize=(7.5, 2.8))
@@ -171,7 +171,7 @@ def score_bars(scores: dict[str, dict[str, float | None]]) -> str:
                 ax.barh(labels, values, color=[LINES[names.index(n) % 4][0] for n in labels],
                         edgecolor="#222222", linewidth=0.4)
             ax.invert_yaxis()
-            ax.set_title(metric.upper() + " (data units)", loc="left")
+            ax.set_title(f"{metric.upper()} ({units or 'data units'})", loc="left")
         fig.tight_layout()
         return png(fig)
 
