@@ -222,3 +222,14 @@ def test_substitution_log_interval_is_of_the_run_mean(fill_dir):
         assert row["upper"] == pytest.approx(np.quantile(means, 0.95), rel=1e-6)
         checked += 1
     assert checked == len(log["rows"]) > 0
+
+
+def test_period_section_summarises_months_and_lists_only_substituted_days(report_html):
+    section = report_html[report_html.index('<section id="period-statistics">'):]
+    section = section[: section.index("</section>")]
+    assert "<h3>Per month</h3>" in section
+    days = section[section.index("<h3>Days touched by substitution</h3>"):]
+    rows = re.findall(r"<tr><td class=\"text\">.*?</tr>", days, re.S)
+    assert rows, "no substituted day listed"
+    filled_pct = [float(re.findall(r"<td>([^<]*)</td>", row)[-1]) for row in rows]
+    assert min(filled_pct) > 0

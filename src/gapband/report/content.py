@@ -20,8 +20,7 @@ from gapband.filling import COMPONENTS
 from gapband.panel import gap_runs
 from gapband.report import figures
 
-#: A record at least this long gets monthly statistics, then yearly ones.
-_MONTHLY_FROM = pd.Timedelta(days=56)
+#: A record at least this long gets a yearly table before the monthly one.
 _YEARLY_FROM = pd.Timedelta(days=730)
 
 
@@ -311,25 +310,41 @@ def zoom_window(filled: np.ndarray) -> slice | None:
 
 
 def period_statistics(result: xr.Dataset, period: str | None) -> dict:
-    """Period means with credible intervals (or why there are none)."""
-    span = pd.Timestamp(result["time"].values[-1]) - pd.Timestamp(result["time"].values[0])
-    if period is None:
-        period = "year" if span >= _YEARLY_FROM else "month" if span >= _MONTHLY_FROM else "day"
+    """Period means with credible intervals, as tables (or why there are none).
+
+    With ``period`` given, one table of every such period. By default: the
+    year for records of two years or more, then a summary per month, then
+    only the days touched by substitution (a filled cell in the day).
+    """
+    if period is not None:
+        tables = [_period_table(result, period)]
+    else:
+        span = pd.Timestamp(result["time"].values[-1]) - pd.Timestamp(result["time"].values[0])
+        tables = [_period_table(result, "year")] if span >= _YEARLY_FROM else []
+        tables += [_period_table(result, "month"), _period_table(result, "day", touched=True)]
+    notes = [t["note"] for t in tables if t["note"]]
+    tables = [t for t in tables if not t["note"]]
+    return {"tables": tables, "note": "; ".join(dict.fromkeys(notes))}
+
+
+def _period_table(result: xr.Dataset, period: str, touched: bool = False) -> dict:
+    """One table of period means; ``touched``: only periods with a filled cell."""
     try:
         computed = stats.period_stats(result, period=period, mean=True)
     except (InputError, UsageError) as err:
-        return {"period": period, "rows": [], "note": str(err), "rule": ""}
+        return {"period": period, "rows": [], "note": str(err), "rule": "", "touched": touched}
     rows = stats.table(computed)
     level = f"{computed.attrs['level']:g}"
+    kept = [r for r in rows.itertuples(index=False) if not touched or r.filled_pct > 0]
     return {
-        "period": period, "level": level, "note": "",
+        "period": period, "level": level, "note": "", "touched": touched,
         "rule": stats.rule_text(computed),
         "rows": [{"series": r.series, "period": _day(r.period_start), "measured": r.measured,
                   "estimate": r.estimate, "lower": getattr(r, f"lower_{level}"),
                   "upper": getattr(r, f"upper_{level}"), "valid": bool(r.valid),
                   "capture": r.capture_pct, "in_record": r.in_record_pct,
                   "filled_pct": r.filled_pct}
-                 for r in rows.itertuples(index=False)],
+                 for r in kept],
     }
 
 
