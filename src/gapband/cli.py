@@ -578,7 +578,8 @@ def _finite(value: float) -> float | None:
               metavar="HOLDOUT_JSON", help="Holdout evidence (default: DIR/holdout.json when "
               "present).")
 @click.option("--period", type=click.Choice(["day", "month", "year"]),
-              help="Period of the statistics section (default: by record length).")
+              help="Show every period of this length in the statistics section (default: per "
+              "month, and only the days touched by substitution).")
 @click.option("--capture-threshold", type=click.FloatRange(0, 100), default=90.0,
               show_default=True, metavar="PCT", help="Data capture a series should reach.")
 @click.option("--title", help="The network's or dataset's name (default: the input's NetCDF "
