@@ -284,6 +284,7 @@ def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width,
                                               accept_unconverged=accept_unconverged,
                                               flag_untested=flag_untested)
     options.keep_draws = keep_draws
+    filling.check_levels(tuple(options.levels))  # before the output folder is made
     blocks = block_settings(kw)
     prepare_dir(out_dir, ["filled.nc", f"filled.{table}", "summary.json"], overwrite)
     panel = gapband.read(input_path, **kw)
