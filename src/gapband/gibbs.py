@@ -85,7 +85,10 @@ _SCALE_STEPS = 5
 _GIG_ROUNDS = 20
 
 #: Collapsed Metropolis steps on each series' own sd, coefficient and noise sd per sweep.
-_OWN_STEPS = 1
+#: This block mixes slowest of all; each step costs a few per cent of a sweep
+#: (the rest is the shared paths' banded draws), so five steps buy several
+#: times its mixing for about a third more time (docs/inference.md).
+_OWN_STEPS = 5
 
 
 class _RowsFailed(np.linalg.LinAlgError):
