@@ -19,6 +19,8 @@ from click.testing import CliRunner
 import open_data
 from gapband import calibration, filling, flags
 from gapband.cli import cli
+from gapband.outputs import open_fill
+from gapband.report import content
 
 FAST = ["--draws", "60", "--tune", "60", "--seed", "4", "--quiet"]
 
@@ -320,6 +322,9 @@ def test_stats_say_whether_their_intervals_are_calibrated(plain_and_calibrated, 
                                f"factors of {path}") for note in document["notes"])
     assert table["calibrated"].all()
     assert "intervals: calibrated" in " ".join(output.split())
+    result, _ = open_fill(calibrated_dir)
+    assert content.period_statistics(result, None)["calibration"].startswith(
+        f"calibrated: the joint draws were widened by the holdout factors of {path}")
     document, table, output = _stats(plain_dir, tmp_path / "plain")
     assert document["calibrated"] is False and document["calibration"] is None
     assert any(note.startswith("not calibrated: the fill was made without --calibration")
