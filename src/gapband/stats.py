@@ -156,10 +156,10 @@ def period_stats(
         units over the period's expected units, %), ``filled_pct``; dims
         ("series", "period"): ``n_expected``, ``n_observed``, ``n_filled``,
         ``capture_pct``, ``with_fills_pct``, ``in_record_pct``. Coordinates
-        ``period`` (start) and ``period_end`` (exclusive). Attributes
-        ``calibrated`` (the joint draws were widened by a holdout
-        calibration; False for a fill made before draws were widened) and
-        ``calibration`` (its file, or empty) among the settings.
+        ``period`` (start) and ``period_end`` (exclusive). The settings are
+        attributes, among them ``calibrated`` (the joint draws were widened
+        by a holdout calibration; False for a fill made before draws were
+        widened) and ``calibration`` (its file, or empty).
 
     Raises
     ------
