@@ -11,6 +11,7 @@ import math
 
 import numpy as np
 import pytest
+import xarray as xr
 from scipy import stats
 
 import gap_patterns
@@ -224,3 +225,167 @@ def test_calibrated_coverage_per_bucket_is_nominal_on_a_fresh_split(tmp_path):
             checked += 1
     assert checked >= 4 * len(LEVELS)  # the outages' bucket among them:
     assert np.unique(run[bucket == calibration.bucket_of(np.array([40]))[0]]).size >= 10
+
+
+# ---- widening the joint draws --------------------------------------------------------------
+
+#: Factors per level (rows: 50, 80, 90, 95) and bucket (columns: the five gap lengths).
+RISING = np.array([[0.8, 1.0, 1.1, 1.2, 1.3],
+                   [0.9, 1.0, 1.2, 1.4, 1.5],
+                   [1.0, 1.0, 1.3, 1.5, 1.8],
+                   [1.1, 1.0, 1.4, 1.7, 2.0]])
+
+
+def _factors(table: np.ndarray) -> dict:
+    return {str(level): {label: float(table[i, b]) for b, label in enumerate(calibration.BUCKETS)}
+            for i, level in enumerate(LEVELS)}
+
+
+def _widening(table: np.ndarray) -> calibration.Calibration:
+    """A calibration with the factors of ``table``, as :func:`calibration.read` would give."""
+    return calibration.Calibration(
+        "check/holdout.json", "0" * 64, "gibbs", "gaps", "none", {}, "", None,
+        _factors(table), longest_tested=1000)
+
+
+def _normal_draws(n_draws: int, seed: int = 0) -> tuple:
+    """Joint draws of 5 series × 200 missing hours, N(mu, sd) per cell, one bucket per series.
+
+    Returns the draws Dataset, the cells' exact medians, sds and the gap lengths.
+    """
+    rng = np.random.default_rng(seed)
+    lengths = np.array([1, 4, 12, 60, 200])  # one gap length of each bucket
+    gap = np.repeat(lengths[:, None], 200, axis=1)
+    mu, sd = rng.normal(10, 3, gap.shape), rng.uniform(0.5, 2.0, gap.shape)
+    values = (mu.ravel() + sd.ravel() * rng.standard_normal((n_draws, gap.size)))
+    grid = {"series": [f"s{i}" for i in range(5)],
+            "time": np.datetime64("2024-01-01") + np.arange(200) * np.timedelta64(1, "h")}
+    draws = xr.Dataset({"fill_draws": (("fill_draw", "missing_cell"), values.astype("float32"),
+                                       {"comment": "joint draws", "calibrated": "no"})},
+                       coords={"missing_cell": np.arange(gap.size)})
+    as_grid = {"coords": grid, "dims": ("series", "time")}
+    return (draws, xr.DataArray(mu, **as_grid), xr.DataArray(sd, **as_grid),
+            xr.DataArray(gap, **as_grid))
+
+
+def _summaries(median: xr.DataArray, lower: dict, upper: dict) -> xr.Dataset:
+    out = xr.Dataset({"fill_median": median})
+    for level in LEVELS:
+        out[f"lower_{level}"], out[f"upper_{level}"] = lower[level], upper[level]
+    return out
+
+
+def _draw_bounds(draws: xr.Dataset, like: xr.DataArray) -> tuple[dict, dict]:
+    """Each cell's central interval bounds over its draws, per level, on the grid of ``like``.
+
+    Source: numpy.quantile's default method, linear interpolation between order
+    statistics (Hyndman & Fan 1996, definition 7) -- the definition gapband stats uses.
+    """
+    values = draws["fill_draws"].values.astype("float64")
+    lower, upper = {}, {}
+    for level in LEVELS:
+        lo, hi = np.quantile(values, [0.5 - level / 200, 0.5 + level / 200], axis=0)
+        lower[level], upper[level] = like.copy(data=lo.reshape(like.shape)), \
+            like.copy(data=hi.reshape(like.shape))
+    return lower, upper
+
+
+@pytest.mark.parametrize("n_draws", [200, 1000])
+def test_widened_draws_have_the_widened_bounds_of_their_own_intervals(n_draws):
+    draws, mu, _, gap = _normal_draws(n_draws)
+    widening = _widening(RISING)
+    median = mu.copy(data=np.median(draws["fill_draws"].values.astype("float64"), axis=0)
+                     .reshape(mu.shape))
+    before_lower, before_upper = _draw_bounds(draws, median)
+    expected = calibration.widen(_summaries(median, before_lower, before_upper), widening,
+                                 LEVELS, gap)
+    widened = calibration.widen_draws(draws.copy(deep=True), median, widening, LEVELS, gap)
+    lower, upper = _draw_bounds(widened, median)
+    for level in LEVELS:
+        for side, got in (("lower", lower), ("upper", upper)):
+            want = expected[f"{side}_{level}"]
+            half = np.abs(want - median)
+            # Off only where a bound falls between two draws of different factors: second
+            # order in the factor's step between neighbouring ranks; measured below 0.2 %
+            # of the half-width with 200 draws. 0.5 % leaves room, a wrong rank-to-level
+            # rule (e.g. the factor of the next level out) misses it by several %.
+            assert float((np.abs(got[level] - want) / half).max()) < 5e-3, (side, level)
+    # the draws' median is where the median was: every draw there keeps its place
+    np.testing.assert_allclose(np.median(widened["fill_draws"].values, axis=0),
+                               median.values.ravel(), rtol=0, atol=1e-5)
+
+
+def test_widened_draws_match_widened_exact_bounds_to_monte_carlo_error():
+    draws, mu, sd, gap = _normal_draws(200, seed=1)
+    widening = _widening(RISING)
+    # Source: scipy.stats.norm.ppf, the exact quantiles the draws come from.
+    exact_lower = {lv: mu - stats.norm.ppf(0.5 + lv / 200) * sd for lv in LEVELS}
+    exact_upper = {lv: mu + stats.norm.ppf(0.5 + lv / 200) * sd for lv in LEVELS}
+    expected = calibration.widen(_summaries(mu, exact_lower, exact_upper), widening, LEVELS,
+                                 gap)
+    widened = calibration.widen_draws(draws, mu, widening, LEVELS, gap)
+    lower, upper = _draw_bounds(widened, mu)
+    factor = {lv: xr.DataArray(RISING[i][calibration.bucket_of(gap.values)], dims=gap.dims)
+              for i, lv in enumerate(LEVELS)}
+    for level in LEVELS:
+        p = 0.5 - level / 200
+        z = stats.norm.ppf(p)
+        # Source: a sample quantile of K draws is asymptotically normal with sd
+        # sqrt(p (1 - p) / K) / f(q_p) (Serfling 1980, Approximation Theorems of
+        # Mathematical Statistics, sec. 2.3.3; the section number from memory); the
+        # widened bound moves c times as far. Tolerance: 4.5 sd per cell (1,000 cells).
+        mc_sd = np.sqrt(p * (1 - p) / 200) / stats.norm.pdf(z) * sd * factor[level]
+        for side, got in (("lower", lower), ("upper", upper)):
+            error = (got[level] - expected[f"{side}_{level}"]) / mc_sd
+            assert float(np.abs(error).max()) < 4.5, (side, level)
+            # and no bias beyond Monte Carlo error over the 1,000 cells
+            assert abs(float(error.mean())) < 4.5 / np.sqrt(error.size) + 0.15, (side, level)
+
+
+def test_draws_keep_their_order_and_a_factor_of_one_leaves_them_bit_for_bit():
+    draws, mu, _, gap = _normal_draws(200, seed=2)
+    raw = draws["fill_draws"].values.copy()
+    # factors falling with level too (bucket 2-6 at 1 throughout)
+    falling = RISING[::-1].copy()
+    falling[:, 1] = 1.0
+    for table in (RISING, falling):
+        widened = calibration.widen_draws(draws.copy(deep=True), mu, _widening(table), LEVELS,
+                                          gap)["fill_draws"].values
+        assert widened.dtype == np.float32
+        order = np.argsort(raw, axis=0, kind="stable")
+        steps = np.diff(np.take_along_axis(widened, order, axis=0), axis=0)
+        assert (steps >= 0).all()  # no two draws of a cell swap places
+        if table is RISING:  # factors of 0.8 and more: distinct draws stay distinct
+            apart = np.diff(np.take_along_axis(raw, order, axis=0), axis=0) > 0
+            assert (steps[apart] > 0).all()
+        one = (gap.values == 4).ravel()  # the bucket whose factor is 1 at every level
+        np.testing.assert_array_equal(widened[:, one], raw[:, one])
+        assert not np.array_equal(widened[:, ~one], raw[:, ~one])
+
+
+def test_falling_factors_never_give_the_draws_narrower_bounds_than_widen():
+    draws, mu, _, gap = _normal_draws(200, seed=3)
+    falling = RISING[::-1]
+    median = mu.copy(data=np.median(draws["fill_draws"].values.astype("float64"), axis=0)
+                     .reshape(mu.shape))
+    expected = calibration.widen(_summaries(median, *_draw_bounds(draws, median)),
+                                 _widening(falling), LEVELS, gap)
+    widened = calibration.widen_draws(draws, median, _widening(falling), LEVELS, gap)
+    lower, upper = _draw_bounds(widened, median)
+    for level in LEVELS:
+        half = expected[f"upper_{level}"] - median
+        assert float(((upper[level] - expected[f"upper_{level}"]) / half).min()) > -5e-3
+        half = median - expected[f"lower_{level}"]
+        assert float(((expected[f"lower_{level}"] - lower[level]) / half).min()) > -5e-3
+
+
+def test_widened_draws_say_so_and_older_draws_read_as_not_calibrated():
+    draws, mu, _, gap = _normal_draws(3)
+    widened = calibration.widen_draws(draws, mu, _widening(RISING), LEVELS, gap)
+    attrs = widened["fill_draws"].attrs
+    assert attrs["calibrated"] == "yes" and attrs["calibration_file"] == "check/holdout.json"
+    assert "check/holdout.json" in attrs["comment"] and attrs["comment"].startswith("joint")
+    assert calibration.draws_calibration(widened) == "check/holdout.json"
+    widened["fill_draws"].attrs = {"comment": "joint draws"}  # as an older gapband wrote them
+    assert calibration.draws_calibration(widened) is None
+    assert calibration.draws_calibration(widened.drop_vars("fill_draws")) is None

@@ -11,6 +11,7 @@ import hashlib
 import json
 
 import numpy as np
+import pandas as pd
 import pytest
 import xarray as xr
 from click.testing import CliRunner
@@ -18,6 +19,8 @@ from click.testing import CliRunner
 import open_data
 from gapband import calibration, filling, flags
 from gapband.cli import cli
+from gapband.outputs import open_fill
+from gapband.report import content
 
 FAST = ["--draws", "60", "--tune", "60", "--seed", "4", "--quiet"]
 
@@ -281,3 +284,77 @@ def test_an_older_calibration_file_is_refused_with_what_to_do(files, tmp_path):
     assert result.exit_code == 3
     assert "format_version 1" in result.output and "rerun gapband holdout" in \
         result.output.replace("\n", "")
+
+
+def test_a_calibrated_fill_widens_its_joint_draws(plain_and_calibrated, holdout_run):
+    plain_dir, calibrated_dir, _, _, _ = plain_and_calibrated
+    path, _ = holdout_run
+    with xr.open_dataset(plain_dir / "filled.nc") as plain, \
+            xr.open_dataset(calibrated_dir / "filled.nc") as widened:
+        plain, widened = plain.load(), widened.load()
+    assert plain["fill_draws"].attrs["calibrated"] == "no"
+    assert widened["fill_draws"].attrs["calibrated"] == "yes"
+    assert widened["fill_draws"].attrs["calibration_file"] == str(path)
+    assert widened["fill_draws"].dtype == np.float32
+    # same seed, same fit: the calibrated draws are the plain ones widened, cell by cell
+    np.testing.assert_array_equal(widened["missing_cell"].values, plain["missing_cell"].values)
+    expected = calibration.widen_draws(plain[["fill_draws"]], plain["fill_median"],
+                                       calibration.read(path), filling.DEFAULT_LEVELS,
+                                       filling.real_gap_length(plain))
+    np.testing.assert_array_equal(widened["fill_draws"].values, expected["fill_draws"].values)
+
+
+def _stats(fill_dir, out):
+    run = CliRunner().invoke(cli, ["stats", str(fill_dir), "--period", "month", "--mean",
+                                   "--out", str(out)])
+    assert run.exit_code == 0, run.output
+    document = json.loads((out / "stats-month.json").read_text(encoding="utf-8"))
+    return document, pd.read_csv(out / "stats-month.csv"), run.output
+
+
+def test_stats_say_whether_their_intervals_are_calibrated(plain_and_calibrated, holdout_run,
+                                                          tmp_path):
+    plain_dir, calibrated_dir, _, _, _ = plain_and_calibrated
+    path, _ = holdout_run
+    document, table, output = _stats(calibrated_dir, tmp_path / "calibrated")
+    assert document["calibrated"] is True and document["calibration"] == str(path)
+    assert any(note.startswith("calibrated: the joint draws were widened by the holdout "
+                               f"factors of {path}") for note in document["notes"])
+    assert table["calibrated"].all()
+    assert "intervals: calibrated" in " ".join(output.split())
+    result, _ = open_fill(calibrated_dir)
+    assert content.period_statistics(result, None)["calibration"].startswith(
+        f"calibrated: the joint draws were widened by the holdout factors of {path}")
+    document, table, output = _stats(plain_dir, tmp_path / "plain")
+    assert document["calibrated"] is False and document["calibration"] is None
+    assert any(note.startswith("not calibrated: the fill was made without --calibration")
+               for note in document["notes"])
+    assert not table["calibrated"].any()
+    assert "intervals: not calibrated" in " ".join(output.split())
+
+
+def test_a_constant_factor_scales_the_period_intervals_by_it(files, holdout_run,
+                                                             plain_and_calibrated, tmp_path):
+    _, csv, model = files
+    path, _ = holdout_run
+    plain_dir = plain_and_calibrated[0]
+    report = json.loads(path.read_text(encoding="utf-8"))
+    for by_bucket in report["widening"]["factors"].values():
+        for label in by_bucket:
+            by_bucket[label] = 2.0
+    doubled = tmp_path / "holdout.json"
+    doubled.write_text(json.dumps(report), encoding="utf-8")
+    run = CliRunner().invoke(cli, ["fill", str(csv), "--out", str(tmp_path / "fill"), "--model",
+                                   str(model), "--calibration", str(doubled), *FAST])
+    assert run.exit_code == 0, run.output
+    _, widened, _ = _stats(tmp_path / "fill", tmp_path / "wide")
+    _, plain, _ = _stats(plain_dir, tmp_path / "plain")
+    width = {name: (t["upper_90"] - t["lower_90"]).to_numpy()
+             for name, t in (("plain", plain), ("widened", widened))}
+    touched = plain["filled_pct"].to_numpy() > 0
+    assert touched.sum() >= 5 and (width["plain"][touched] > 0).all()
+    # Each draw's deviation from its cell's median doubles, so each draw's period mean
+    # moves twice as far from the mean of the medians, and the quantiles of an affine map
+    # are its map of the quantiles (linear interpolation, numpy's default): twice the
+    # width, to float32 rounding of the stored draws.
+    np.testing.assert_allclose(width["widened"], 2 * width["plain"], rtol=1e-4, atol=1e-9)

@@ -12,7 +12,7 @@ import pytest
 from scipy.cluster import hierarchy
 from scipy.spatial.distance import squareform
 
-from gapband import filling, flags, parallel, spec
+from gapband import calibration, filling, flags, parallel, spec
 from gapband.errors import FitError, UsageError
 from gapband.panel import make_panel
 
@@ -257,6 +257,33 @@ def test_merged_result_is_complete_and_consistent(gappy, plan, in_process):
     assert summary["flags"] == flags.flag_counts(result)
     assert summary["diagnostics"]["blocks_filled"] == 4
 
+
+
+def test_blocks_widen_their_joint_draws_as_one_fill_would(gappy, plan, in_process, tmp_path):
+    panel = gappy[0]
+    levels = filling.DEFAULT_LEVELS
+    factors = {f"{lv:g}": {label: 1.0 + 0.1 * i + 0.2 * b
+                           for b, label in enumerate(calibration.BUCKETS)}
+               for i, lv in enumerate(levels)}
+    path = tmp_path / "holdout.json"  # what calibration.read needs of a holdout.json
+    path.write_text(json.dumps({
+        "format": calibration.CALIBRATION_FORMAT, "format_version": calibration.CALIBRATION_VERSION,
+        "input_sha256": None, "evidence": {"longest_tested_steps": panel.sizes["time"]},
+        "settings": {"method": "gibbs", "scheme": "gaps", "transform": TINY.transform,
+                     "spec_detail": calibration.spec_content(TINY),
+                     "spec_sha256": calibration.spec_sha256(TINY)},
+        "widening": {"factors": factors}}), encoding="utf-8")
+    result, _ = parallel.fill_blocks(panel, plan, model=TINY, options=OPTIONS, calibration=path)
+    draws = result["fill_draws"]
+    assert draws.attrs["calibrated"] == "yes" and draws.attrs["calibration_file"] == str(path)
+    raw = in_process[0]
+    assert raw["fill_draws"].attrs["calibrated"] == "no"
+    # Same seeds, same fits: each block widened its draws with the whole panel's gap lengths.
+    expected = calibration.widen_draws(raw[["fill_draws"]].copy(deep=True), raw["fill_median"],
+                                       calibration.read(path), levels,
+                                       filling.real_gap_length(panel))
+    np.testing.assert_array_equal(draws["missing_cell"].values, raw["missing_cell"].values)
+    np.testing.assert_array_equal(draws.values, expected["fill_draws"].values)
 
 def test_a_failing_block_is_retried_then_reported(gappy, plan, monkeypatch):
     panel, _ = gappy

@@ -228,6 +228,7 @@ def test_period_section_summarises_months_and_lists_only_substituted_days(report
     section = report_html[report_html.index('<section id="period-statistics">'):]
     section = section[: section.index("</section>")]
     assert "<h3>Per month</h3>" in section
+    assert "Intervals not calibrated: the fill was made without --calibration" in section
     days = section[section.index("<h3>Days touched by substitution</h3>"):]
     rows = re.findall(r"<tr><td class=\"text\">.*?</tr>", days, re.S)
     assert rows, "no substituted day listed"

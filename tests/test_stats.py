@@ -403,6 +403,30 @@ def test_a_fill_without_joint_draws_is_refused():
         stats.period_stats(result, period="month")
 
 
+
+@pytest.mark.parametrize(("draw_attrs", "cells_widened", "calibrated", "text"), [
+    ({"calibrated": "yes", "calibration_file": "check/holdout.json"}, True, True,
+     "calibrated: the joint draws were widened by the holdout factors of check/holdout.json"),
+    ({"calibrated": "no"}, False, False, "not calibrated: the fill was made without"),
+    # an older gapband widened the cells only and wrote no attribute on the draws
+    ({}, True, False, "not calibrated: the fill's cell intervals were widened by "
+                      "--calibration but its joint draws"),
+])
+def test_the_statistics_say_whether_the_draws_were_calibrated(draw_attrs, cells_widened,
+                                                               calibrated, text):
+    wide = airquality()
+    wide.iloc[3:9, 0] = np.nan
+    result = fill_like(wide, "D", np.random.default_rng(0).normal(70, 5, (20, 6)))
+    result["fill_draws"].attrs = draw_attrs
+    if cells_widened:
+        result.attrs["gapband_calibration"] = json.dumps({"file": "check/holdout.json"})
+    computed = stats.period_stats(result, period="month")
+    document = stats.document(computed, stats.table(computed))
+    assert document["calibrated"] is calibrated
+    assert document["calibration"] == ("check/holdout.json" if calibrated else None)
+    assert sum(note.startswith(text) for note in document["notes"]) == 1
+    assert (stats.table(computed)["calibrated"] == calibrated).all()
+
 # ---- the draws and components fill keeps, and the command line -------------------------
 
 SMALL = 'base = "daily"\nrank = 1\nar_factors = 0\n\n[[seasonal]]\nperiod = "7D"\nharmonics = 1\n'
@@ -479,6 +503,7 @@ def test_cli_stats_writes_csv_and_json(filled_dir):
     assert document["validity_rule"] == (
         "for statistics of time steps a month is valid when at least 75 % of its expected time "
         "steps are observed; filled cells never make anything valid")
+    assert document["calibrated"] is False and not table["calibrated"].any()
     complete = table[table["series"] == "Temp"]  # Temp has no gaps: zero width
     assert (complete["lower_90"] == complete["upper_90"]).all()
     again = CliRunner().invoke(cli, ["stats", str(out), "--period", "month"])

@@ -6,7 +6,9 @@ split-conformal widening factor per interval level and gap-length bucket
 provenance of the holdout they came from, from ``holdout.json``;
 :meth:`Calibration.check` refuses a fill they were not made for; and
 :func:`widen` scales each filled cell's intervals by the factor of the
-bucket of the real gap it sits in.
+bucket of the real gap it sits in; :func:`widen_draws` scales the joint
+draws kept for period statistics the same way, and :func:`draws_calibration`
+reads back whether a fill's draws were.
 
 Rules (docs/calibration.md states them for users):
 
@@ -401,3 +403,130 @@ def widen(summaries: xr.Dataset, calibration: Calibration, levels: tuple[float, 
             out[name].attrs = {**summaries[name].attrs, "comment": note}
         inner = (lower, upper)
     return out
+
+
+#: Missing cells whose joint draws are widened at a time (bounds working memory).
+WIDEN_CHUNK_CELLS = 4096
+
+
+def widen_draws(draws: xr.Dataset, median: xr.DataArray, calibration: Calibration,
+                levels: tuple[float, ...], gap_length: xr.DataArray) -> xr.Dataset:
+    """Widen a fill's joint draws as :func:`widen` widens its intervals; mark them calibrated.
+
+    In each cell, every draw's deviation from the cell's median is scaled by
+    the factor, for the cell's gap-length bucket, of the central level its
+    rank stands for (:func:`scale_draws`). The widened draws' central
+    intervals at each level then match the cells' widened bounds, and each
+    cell's draws keep their order, so how draws move together across cells
+    and time is the model's, unchanged.
+
+    The draws are widened in place, a chunk of cells at a time: they can be
+    the largest array a fill holds, and a second copy would double it.
+
+    Parameters
+    ----------
+    draws : Dataset
+        ``fill_draws`` dims (fill_draw, missing_cell) with coordinate
+        ``missing_cell``, the flat index series × time steps + time index
+        into ``median`` (:func:`gapband.filling.joint_draws`).
+    median : DataArray, dims (series, time)
+        The cells' predictive medians (``fill_median``), the centre of the widening.
+    gap_length : DataArray of int, dims (series, time)
+        Length in steps of the real missing run each cell sits in.
+
+    Returns
+    -------
+    Dataset
+        ``draws``, with ``fill_draws`` widened and its attributes ``calibrated
+        = "yes"``, ``calibration_file`` and ``comment`` saying so.
+    """
+    grid = median.transpose("series", "time")
+    cells = draws["missing_cell"].values
+    centre = grid.values.ravel()[cells]
+    lengths = gap_length.transpose("series", "time").sel(series=grid["series"]).values.ravel()
+    code = bucket_of(np.maximum(lengths[cells], 1))
+    ordered = sorted(levels)
+    table = np.array([[calibration.factors[level_key(lv)][label] for label in BUCKETS]
+                      for lv in ordered], dtype="float64")
+    values = draws["fill_draws"].values
+    for begin in range(0, cells.size, WIDEN_CHUNK_CELLS):
+        chunk = slice(begin, begin + WIDEN_CHUNK_CELLS)
+        values[:, chunk] = scale_draws(values[:, chunk], centre[chunk], table[:, code[chunk]],
+                                       ordered)
+    draws["fill_draws"].attrs.update({
+        "calibrated": "yes",
+        "calibration_file": calibration.path,
+        "comment": f"{draws['fill_draws'].attrs.get('comment', '')}; each draw's deviation "
+                   "from its cell's median widened by the factor of its gap length and of the "
+                   f"central level its rank stands for ({calibration.path})".lstrip("; "),
+    })
+    return draws
+
+
+def scale_draws(values: np.ndarray, median: np.ndarray, factors: np.ndarray,
+                levels: Sequence[float]) -> np.ndarray:
+    """Scale each draw's deviation from its cell's median by the factor its rank stands for.
+
+    A cell's K draws are ranked; the draw of rank r (0 to K - 1) sits at
+    quantile u = r / (K - 1) of the cell's draws, the position numpy's
+    default quantile (linear interpolation between order statistics) gives
+    it, and so at the edge of the central interval of level |2u - 1|. Its
+    factor is that level's, interpolated linearly between the calibrated
+    levels and held at the nearest one outside them; its deviation from the
+    median is multiplied by it. Going outward from the median on each side,
+    the scaled deviations are then kept at least as large as those nearer
+    the median, as :func:`widen` keeps a level's bounds at least as wide as
+    the levels below it, so the draws never change order.
+
+    Parameters
+    ----------
+    values : ndarray (draws, cells)
+        The draws; non-finite draws are left as they are.
+    median : ndarray (cells,)
+        Each cell's median.
+    factors : ndarray (levels, cells)
+        Each cell's factor at each level, levels ascending.
+    levels : sequence of float
+        The levels in %, ascending.
+
+    Returns
+    -------
+    ndarray (draws, cells), of ``values``' dtype
+        Cells whose factors are all 1 are returned unchanged, bit for bit.
+    """
+    out = values.copy()
+    moved = np.flatnonzero((factors != 1).any(axis=0))
+    n_draws = values.shape[0]
+    if moved.size == 0 or n_draws == 0:
+        return out
+    order = np.argsort(values[:, moved], axis=0, kind="stable")
+    ranked = np.take_along_axis(values[:, moved], order, axis=0).astype("float64")
+    rank_level = np.abs(2 * np.arange(n_draws) / max(n_draws - 1, 1) - 1)
+    if n_draws == 1:
+        rank_level[:] = 0.0  # one draw stands for the median
+    # Linear interpolation between the levels, constant beyond them, as a (draws, levels)
+    # matrix of weights: np.interp is linear in the values it interpolates.
+    fractions = np.asarray(levels, dtype="float64") / 100
+    weights = np.stack([np.interp(rank_level, fractions, column)
+                        for column in np.eye(fractions.size)], axis=1)
+    factor = weights @ factors[:, moved]
+    finite = np.isfinite(ranked)
+    deviation = np.where(finite, factor * (ranked - median[moved]), 0.0)
+    above = np.maximum.accumulate(np.maximum(deviation, 0.0), axis=0)
+    below = np.maximum.accumulate(np.maximum(-deviation, 0.0)[::-1], axis=0)[::-1]
+    widened = np.where(finite, median[moved] + above - below, ranked)
+    block = np.empty_like(ranked)
+    np.put_along_axis(block, order, widened, axis=0)
+    out[:, moved] = block.astype(values.dtype)
+    return out
+
+
+def draws_calibration(result: xr.Dataset) -> str | None:
+    """The calibration file a fill's joint draws were widened by, or None when they were not.
+
+    A fill made before the draws were widened has no ``calibrated``
+    attribute on ``fill_draws``: its draws were not widened.
+    """
+    if "fill_draws" not in result or result["fill_draws"].attrs.get("calibrated") != "yes":
+        return None
+    return str(result["fill_draws"].attrs.get("calibration_file", ""))

@@ -527,6 +527,8 @@ def stats(fill_dir, period, mean, maximum, percentiles, thresholds, overs, runni
     console.print(stats_table(computed))
     rule = period_stats.rule_text(computed)
     console.print(f"[dim]validity: {escape(rule)}[/]", highlight=False)
+    console.print(f"[dim]intervals: {escape(period_stats.calibration_text(computed))}[/]",
+                  highlight=False)
     for path in period_stats.write(computed, out_dir, overwrite=True):
         console.print(f"wrote {path}", highlight=False)
 

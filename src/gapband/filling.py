@@ -23,7 +23,7 @@ import pandas as pd
 import xarray as xr
 
 from gapband import causes, flags, outputs, resources
-from gapband.calibration import Calibration, read, widen
+from gapband.calibration import Calibration, read, widen, widen_draws
 from gapband.chains import DEFAULT_CHAINS, TIME_BUDGET
 from gapband.errors import GapbandError, InputError, UsageError
 from gapband.panel import run_lengths, step_of
@@ -157,8 +157,10 @@ def fill(
         :class:`~gapband.calibration.Calibration` object is taken as checked):
         each interval is widened by the factor of its level and gap-length
         bucket (:func:`gapband.calibration.widen`) before the flags are
-        computed, and fills in gaps longer than the holdout tested are
-        flagged uncertain unless ``options.rules.flag_untested`` is False.
+        computed, and the joint draws with it
+        (:func:`gapband.calibration.widen_draws`); fills in gaps longer than
+        the holdout tested are flagged uncertain unless
+        ``options.rules.flag_untested`` is False.
     gap_length : DataArray of int, dims (series, time), optional
         Length of the real missing run each cell sits in; default: the
         Panel's own. A block of a larger Panel passes the whole Panel's.
@@ -224,7 +226,10 @@ def fill(
                           gap_length=gap_length)
     result = result.merge(component_means(fitted, panel))
     if options.keep_draws:
-        result = result.merge(joint_draws(fitted, result, options.keep_draws, options.seed))
+        draws = joint_draws(fitted, result, options.keep_draws, options.seed)
+        if widening is not None:
+            draws = widen_draws(draws, result["fill_median"], widening, levels, gap_length)
+        result = result.merge(draws)
     predict_seconds = time.perf_counter() - started
     if not observed_unchanged(panel, result):  # a guard on our own code, never expected
         raise GapbandError("internal error: an observed value changed during the fill")
@@ -476,8 +481,10 @@ def joint_draws(fitted: Fitted, result: xr.Dataset, n_draws: int, seed: int) -> 
     when there are fewer), each give one predictive value per filled cell:
     row d across cells is one joint draw, so a complete series can be put
     together per draw with the observed cells fixed. Computed
-    :data:`DRAW_CHUNK_CELLS` cells at a time; stored as float32. Widening by
-    ``--calibration`` is not applied (it is defined per cell and level).
+    :data:`DRAW_CHUNK_CELLS` cells at a time; stored as float32. Not widened:
+    :func:`fill` widens them with a calibration
+    (:func:`gapband.calibration.widen_draws`); attribute ``calibrated`` says
+    whether they were.
 
     Returns
     -------
@@ -508,6 +515,7 @@ def joint_draws(fitted: Fitted, result: xr.Dataset, n_draws: int, seed: int) -> 
             "long_name": "joint posterior predictive draws of the filled cells",
             "comment": "row d across all cells is one joint draw; observed cells are not "
                        "stored (they are fixed); estimates, not measurements",
+            "calibrated": "no",
             **({"units": units} if units is not None else {})})},
         coords={"missing_cell": ("missing_cell", gathered.astype("int64"), {
             "long_name": "flat index of the filled cell: series index × time steps + time index",

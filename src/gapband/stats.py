@@ -29,6 +29,7 @@ import pandas as pd
 import xarray as xr
 
 from gapband import flags, outputs, windows
+from gapband.calibration import draws_calibration
 from gapband.errors import InputError, UsageError
 from gapband.panel import fixed_duration, step_of
 
@@ -155,7 +156,10 @@ def period_stats(
         units over the period's expected units, %), ``filled_pct``; dims
         ("series", "period"): ``n_expected``, ``n_observed``, ``n_filled``,
         ``capture_pct``, ``with_fills_pct``, ``in_record_pct``. Coordinates
-        ``period`` (start) and ``period_end`` (exclusive).
+        ``period`` (start) and ``period_end`` (exclusive). The settings are
+        attributes, among them ``calibrated`` (the joint draws were widened
+        by a holdout calibration; False for a fill made before draws were
+        widened) and ``calibration`` (its file, or empty).
 
     Raises
     ------
@@ -232,6 +236,8 @@ def period_stats(
                "method": result.attrs.get("gapband_method", ""),
                "seed": int(result.attrs.get("gapband_seed", -1)),
                "calibrated_cells": "gapband_calibration" in result.attrs,
+               "calibrated": draws_calibration(result) is not None,
+               "calibration": draws_calibration(result) or "",
                "period": period, "level": float(level),
                "min_capture_pct": rules.period, "day_capture_pct": rules.day,
                "running_capture_pct": rules.running, "running": window,
@@ -251,7 +257,9 @@ def table(stats: xr.Dataset) -> pd.DataFrame:
     Columns: ``series, period_start, period_end, statistic, kind, percentile,
     threshold, over, window, estimate, lower_<L>, upper_<L>, measured, valid,
     valid_pct, capture_pct, with_fills_pct, in_record_pct, filled_pct,
-    n_expected, n_observed, n_filled, units``.
+    n_expected, n_observed, n_filled, units, calibrated``; ``calibrated`` says
+    whether the interval comes from joint draws widened by a holdout
+    calibration (:func:`calibration_text`).
     """
     level = f"{stats.attrs['level']:g}".replace(".", "_")
     frames = []
@@ -277,6 +285,7 @@ def table(stats: xr.Dataset) -> pd.DataFrame:
                 "capture_pct", "with_fills_pct", "in_record_pct", "filled_pct",
                 "n_expected", "n_observed", "n_filled")},
             "units": stats.attrs["units"],
+            "calibrated": stats.attrs["calibrated"],
         })
         frames.append(frame)
     rows = pd.concat(frames, ignore_index=True)
@@ -322,6 +331,8 @@ def document(stats: xr.Dataset, rows: pd.DataFrame) -> dict:
         "draws": attrs["draws"],
         "units": attrs["units"],
         "running": attrs["running"],
+        "calibrated": attrs["calibrated"],
+        "calibration": attrs["calibration"] if attrs["calibrated"] else None,
         "validity_rule": rule_text(stats),
         "min_capture_pct": {"period": attrs["min_capture_pct"],
                             "day": attrs["day_capture_pct"],
@@ -332,13 +343,28 @@ def document(stats: xr.Dataset, rows: pd.DataFrame) -> dict:
             "measured is the same statistic from observed values alone, over the same "
             "valid days and running means as the estimate",
             "filled_pct is the share of the statistic that comes from filled cells, in %",
-            *(["the fill's cell intervals were widened by --calibration; the joint draws and "
-               "so these intervals are not"] if attrs["calibrated_cells"] else []),
+            calibration_text(stats),
             "filled values are estimates, not measurements: whether they may count toward "
             "data capture or a reported statistic is for the local regulator's rules to decide",
         ],
         "rows": rows.to_dict(orient="records"),
     }
+
+
+def calibration_text(stats: xr.Dataset) -> str:
+    """Whether the intervals are calibrated, in words, and by which file."""
+    attrs = stats.attrs
+    if attrs["calibrated"]:
+        return (f"calibrated: the joint draws were widened by the holdout factors of "
+                f"{attrs['calibration']}, as the fill's cell intervals were; how the filled "
+                "cells move together is the model's own, which the holdout does not test")
+    if attrs["calibrated_cells"]:
+        return ("not calibrated: the fill's cell intervals were widened by --calibration but "
+                "its joint draws, and so these intervals, were not (a fill by an older "
+                "gapband); rerun gapband fill with --calibration to calibrate them")
+    return ("not calibrated: the fill was made without --calibration, so these intervals are "
+            "the model's own; gapband holdout tests them and gapband fill --calibration "
+            "widens them")
 
 
 def rule_text(stats: xr.Dataset) -> str:

@@ -310,7 +310,7 @@ def zoom_window(filled: np.ndarray) -> slice | None:
 
 
 def period_statistics(result: xr.Dataset, period: str | None) -> dict:
-    """Period means with credible intervals, as tables (or why there are none).
+    """Period means with credible intervals, as tables (or why there are none), calibrated or not.
 
     With ``period`` given, one table of every such period. By default: the
     year for records of two years or more, then a summary per month, then
@@ -324,7 +324,8 @@ def period_statistics(result: xr.Dataset, period: str | None) -> dict:
         tables += [_period_table(result, "month"), _period_table(result, "day", touched=True)]
     notes = [t["note"] for t in tables if t["note"]]
     tables = [t for t in tables if not t["note"]]
-    return {"tables": tables, "note": "; ".join(dict.fromkeys(notes))}
+    return {"tables": tables, "note": "; ".join(dict.fromkeys(notes)),
+            "calibration": tables[0]["calibration"] if tables else ""}
 
 
 def _period_table(result: xr.Dataset, period: str, touched: bool = False) -> dict:
@@ -332,13 +333,15 @@ def _period_table(result: xr.Dataset, period: str, touched: bool = False) -> dic
     try:
         computed = stats.period_stats(result, period=period, mean=True)
     except (InputError, UsageError) as err:
-        return {"period": period, "rows": [], "note": str(err), "rule": "", "touched": touched}
+        return {"period": period, "rows": [], "note": str(err), "rule": "", "touched": touched,
+                "calibration": ""}
     rows = stats.table(computed)
     level = f"{computed.attrs['level']:g}"
     kept = [r for r in rows.itertuples(index=False) if not touched or r.filled_pct > 0]
     return {
         "period": period, "level": level, "note": "", "touched": touched,
         "rule": stats.rule_text(computed),
+        "calibration": stats.calibration_text(computed),
         "rows": [{"series": r.series, "period": _day(r.period_start), "measured": r.measured,
                   "estimate": r.estimate, "lower": getattr(r, f"lower_{level}"),
                   "upper": getattr(r, f"upper_{level}"), "valid": bool(r.valid),
