@@ -39,6 +39,9 @@ LEVEL = 90.0
 #: --max-gap): a 90 % interval wider than the series' 5-95 % range of
 #: observations says the fill knows no more than the series' own
 #: distribution; gaps over three days are flagged whatever their interval.
+#: The defaults stay on: the width rule against the series' variability
+#: around its daily and weekly cycle, and no fills before a station's first
+#: or after its last observation (PELLB's late start stays empty).
 FLAG_RULES = filling.FlagRules(level=LEVEL, max_rel_width=1.0, max_gap="72h")
 
 
@@ -151,7 +154,9 @@ def run(out_dir: str | Path, *, quick: bool = False, overwrite: bool = False,
                      "holdout_max_repeats": chosen.holdout_max_repeats,
                      "flag_rules": {"level": FLAG_RULES.level,
                                     "max_rel_width": FLAG_RULES.max_rel_width,
-                                    "max_gap": FLAG_RULES.max_gap}},
+                                    "max_var_width": FLAG_RULES.max_var_width,
+                                    "max_gap": FLAG_RULES.max_gap,
+                                    "extrapolate": FLAG_RULES.extrapolate}},
         "quantities": {},
     }
     for quantity in DEMO_QUANTITIES:

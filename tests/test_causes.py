@@ -33,7 +33,7 @@ def _result(tmp_path, text: str) -> xr.Dataset:
     panel = make_panel(values, SERIES, time, "h")
     panel["fill_median"] = panel["value"].fillna(1.0)
     panel["fill_sd"] = panel["value"] * 0 + 0.1
-    result = flags.assign(panel, min_observed=1)
+    result = flags.assign(panel, min_observed=1, max_var_width=None)  # no intervals here
     return causes.attach(result, causes.read(_write(tmp_path, text), SERIES))
 
 

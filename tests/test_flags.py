@@ -37,6 +37,11 @@ def make_result(values, width90=1.0, step="h", median=5.0):
     return result
 
 
+def values_da(values):
+    """``values`` (one series) as a (series, time) DataArray, for masks shaped like it."""
+    return xr.DataArray(np.atleast_2d(values), dims=DIMS)
+
+
 def row(observed, gaps):
     """One series: ``observed`` values then NaN cells at the positions in ``gaps``."""
     out = np.asarray(observed, dtype="float64").copy()
@@ -101,7 +106,9 @@ def test_interval_wider_than_max_rel_width_times_spread_is_uncertain():
     values = row(np.arange(24.0) * 5, [21, 22, 23])  # spread 90, so the limit is 45
     width = np.zeros(24)
     width[[21, 22, 23]] = [44.0, 45.0, 46.0]
-    out = flags.assign(make_result([values], width90=width), max_rel_width=0.5)
+    # the gap ends the record; counted as inside it here, so only the rule under test fires
+    out = flags.assign(make_result([values], width90=width), max_rel_width=0.5,
+                       max_var_width=None, outside=xr.zeros_like(values_da(values), dtype=bool))
     np.testing.assert_array_equal(out["fill_flag"].values[0, 21:], [FILL, FILL, UNCERTAIN])
 
 
@@ -151,9 +158,12 @@ def test_series_with_too_few_observations_are_not_filled():
     for name in ["filled", "fill_mean", "fill_median", "fill_sd", "lower_90", "upper_97.5"]:
         assert np.isnan(out[name].values[0, missing]).all(), name
     np.testing.assert_array_equal(out["filled"].values[0, ~missing], [1.0, 2.0, 3.0])
-    # the same series is filled once the threshold allows it
+    # the same series is filled once the threshold allows it, between its first and last
+    # observations; after its last it is not filled (extrapolated)
     relaxed = flags.assign(make_result([sparse, full]), min_observed=3)
-    assert (relaxed["fill_flag"].values[0, missing] == FILL).all()
+    inside = missing & (np.arange(20) < 10)
+    assert (relaxed["fill_flag"].values[0, inside] == FILL).all()
+    assert (relaxed["fill_flag"].values[0, 11:] == NOT_FILLED).all()
 
 
 def test_missing_cell_without_a_model_fill_is_not_filled():
@@ -177,8 +187,8 @@ def test_flag_variable_follows_cf_flag_conventions():
     assert meanings == ["observed", "filled", "filled_uncertain", "not_filled"]
     np.testing.assert_array_equal(attrs["flag_values"], [0, 1, 2, 3])
     # Source: CF Conventions 1.10, section 3.4 Ancillary Data.
-    assert out["filled"].attrs["ancillary_variables"] == "fill_flag"
-    assert out["value"].attrs["ancillary_variables"] == "fill_flag"
+    assert out["filled"].attrs["ancillary_variables"] == "fill_flag fill_reason"
+    assert out["value"].attrs["ancillary_variables"] == "fill_flag fill_reason"
     assert out["filled"].attrs["units"] == "m3/s"
 
 
@@ -222,8 +232,11 @@ def test_level_not_computed_is_refused_naming_the_available_levels():
         flags.assign(result, level=99, max_width=1.0)
     with pytest.raises(UsageError, match=r"level 'high' is not among"):
         flags.assign(result, level="high", max_rel_width=1.0)
+    # the default width rule reads the level too
+    with pytest.raises(UsageError, match=r"level 99 is not among"):
+        flags.assign(result, level=99)
     # without a width rule the level is not used, so it is not checked
-    flags.assign(result, level=99)
+    flags.assign(result, level=99, max_var_width=None)
 
 
 @pytest.mark.parametrize(
@@ -250,3 +263,241 @@ def test_result_without_summaries_is_refused():
         flags.assign(panel)
     with pytest.raises(UsageError, match=r"lacks fill_flag"):
         flags.flag_counts(panel)
+
+
+# --- reasons: the fill_reason bit field ------------------------------------------------
+
+
+def bits_of(*names):
+    return sum(int(m) for n, m in zip(flags.REASON_NAMES, flags.REASON_MASKS, strict=True)
+               if n in names)
+
+
+def test_reason_bits_record_every_rule_that_fired_and_decode_back():
+    # s0: a 6-hour gap (cells 4-9) with wide intervals; s1 one short gap; s2 three
+    # observations only; s3 starts late and ends early
+    s0 = row(np.arange(30.0), range(4, 10))
+    s1 = row(np.arange(30.0), [20])
+    s2 = np.full(30, np.nan)
+    s2[[3, 9, 15]] = 1.0
+    s3 = row(np.arange(30.0), [*range(0, 5), *range(27, 30)])
+    width = np.full((4, 30), 0.5)
+    width[0, 4:10] = 50.0
+    unconverged = np.zeros((4, 30), dtype=bool)
+    unconverged[0, 4:6] = True
+    out = flags.assign(make_result([s0, s1, s2, s3], width90=width), max_width=10.0,
+                       max_rel_width=0.5, max_gap="4h", tested_gap=5,
+                       unconverged=xr.DataArray(unconverged, dims=DIMS))
+    reason, flag = out["fill_reason"].values, out["fill_flag"].values
+    assert reason.dtype == np.int16 and out["fill_reason"].dims == DIMS
+    everything = ("not_converged", "untested_gap", "long_gap", "wide_interval",
+                  "wide_vs_range", "wide_vs_variability")
+    assert (flag[0, 4:6] == UNCERTAIN).all()
+    assert (reason[0, 4:6] == bits_of(*everything)).all()
+    assert flags.reason_names(int(reason[0, 4])) == [
+        "not_converged", "untested_gap", "long_gap", "wide_interval", "wide_vs_range",
+        "wide_vs_variability"]
+    assert (reason[0, 6:10] == bits_of(*everything[1:])).all()
+    # a plain fill and every observed cell: no reason
+    assert flag[1, 20] == FILL and reason[1, 20] == 0
+    assert (reason[np.isfinite(np.vstack([s0, s1, s2, s3]))] == 0).all()
+    # not filled: why it is empty, not what would have caught a fill
+    missing2 = np.isnan(s2)
+    assert (flag[2, missing2] == NOT_FILLED).all()
+    inner = missing2 & (np.arange(30) > 3) & (np.arange(30) < 15)
+    assert (reason[2, inner] == bits_of("few_observations")).all()
+    assert (reason[2, 0:3] == bits_of("few_observations", "extrapolated")).all()
+    assert (flag[3, [0, 4, 27, 29]] == NOT_FILLED).all()
+    assert (reason[3, [0, 4, 27, 29]] == bits_of("extrapolated")).all()
+    # reason 0 exactly where the flag is observed or filled
+    np.testing.assert_array_equal(reason == 0, np.isin(flag, (OBS, FILL)))
+    # text and back
+    text = flags.reason_names(reason)
+    assert text[0, 4] == ";".join(everything)
+    assert text[1, 20] == "" and text[3, 0] == "extrapolated"
+    np.testing.assert_array_equal(flags.reason_codes(text.ravel()), reason.ravel())
+
+
+def test_reason_variable_follows_cf_flag_mask_conventions():
+    out = flags.assign(make_result([row(np.arange(15.0), [2])]))
+    attrs = out["fill_reason"].attrs
+    meanings = attrs["flag_meanings"].split(" ")
+    # Source: CF Conventions 1.10, section 3.5 Flags: flag_masks (with flag_meanings)
+    # describe independent Boolean conditions as bit fields; flag_masks has the type of
+    # the flag variable, one mask per meaning, and meanings are single words.
+    assert "flag_values" not in attrs
+    assert attrs["flag_masks"].dtype == out["fill_reason"].dtype
+    assert len(attrs["flag_masks"]) == len(meanings) == len(set(meanings))
+    assert all(re.fullmatch(r"[A-Za-z0-9_.+@-]+", m) for m in meanings)
+    masks = attrs["flag_masks"].astype(int)
+    assert all(m > 0 and m & (m - 1) == 0 for m in masks)  # one bit each
+    assert meanings == list(flags.REASON_NAMES)
+    assert out["fill_flag"].attrs["ancillary_variables"] == "fill_reason"
+
+
+def test_reason_counts_per_series_and_overall():
+    late = row(np.arange(20.0), [0, 1, 2, 10])
+    out = flags.assign(make_result([late, row(np.arange(20.0), [5, 6, 7])]), max_gap="2h")
+    counts = flags.reason_counts(out)
+    assert counts["series"]["s0"]["extrapolated"] == 3
+    assert counts["series"]["s0"]["long_gap"] == 0
+    assert counts["series"]["s1"]["long_gap"] == 3
+    assert counts["overall"] == {**{name: 0 for name in flags.REASON_NAMES},
+                                 "extrapolated": 3, "long_gap": 3}
+    json.dumps(counts)
+
+
+def test_unknown_reason_text_is_refused():
+    with pytest.raises(UsageError, match=r"'wide' is not a flag reason"):
+        flags.reason_codes(["long_gap;wide"])
+
+
+# --- extrapolation ------------------------------------------------------------------------
+
+
+def test_an_extrapolated_cell_is_not_filled_by_default():
+    values = row(np.arange(20.0), [0, 1, 9, 18, 19])
+    out = flags.assign(make_result([values]))
+    flag = out["fill_flag"].values[0]
+    np.testing.assert_array_equal(flag[[0, 1, 18, 19]], NOT_FILLED)
+    assert flag[9] == FILL  # an inner gap is filled
+    for name in ("filled", "fill_median", "fill_mean", "fill_sd", "lower_90", "upper_97.5"):
+        assert np.isnan(out[name].values[0, [0, 1, 18, 19]]).all(), name
+    assert "not_filled: before a series' first" in out["fill_flag"].attrs["comment"]
+
+
+def test_extrapolated_cells_are_filled_and_flagged_on_request():
+    values = row(np.arange(20.0), [0, 1, 9, 18, 19])
+    out = flags.assign(make_result([values]), extrapolate=True)
+    flag, reason = out["fill_flag"].values[0], out["fill_reason"].values[0]
+    np.testing.assert_array_equal(flag[[0, 1, 18, 19]], UNCERTAIN)
+    np.testing.assert_array_equal(reason[[0, 1, 18, 19]], bits_of("extrapolated"))
+    np.testing.assert_array_equal(out["filled"].values[0, [0, 1, 18, 19]], 5.0)
+    assert flag[9] == FILL and reason[9] == 0
+
+
+def test_extrapolation_follows_the_mask_given_for_a_block():
+    # a block sees its series start late, but the whole Panel observed it before
+    values = row(np.arange(20.0), [0, 1, 2])
+    outside = xr.DataArray(np.zeros((1, 20), dtype=bool), dims=DIMS)
+    out = flags.assign(make_result([values]), outside=outside)
+    np.testing.assert_array_equal(out["fill_flag"].values[0, :3], FILL)
+
+
+def test_a_cell_without_a_fill_is_not_filled_even_when_extrapolation_is_asked_for():
+    result = make_result([row(np.arange(15.0), [0, 7])])
+    result["fill_median"][0, 0] = np.nan
+    out = flags.assign(result, extrapolate=True)
+    assert out["fill_flag"].values[0, 0] == NOT_FILLED
+    assert out["fill_reason"].values[0, 0] == bits_of("no_fill", "extrapolated")
+
+
+# --- the default width rule: variability around the daily and weekly cycle ---------------
+
+
+def cycle_series(step, periods, noise, seed=1):
+    """A daily sine (amplitude 6) plus a weekend offset (3) plus Normal noise."""
+    rng = np.random.default_rng(seed)
+    time = pd.date_range("2024-01-01", periods=periods, freq=step)  # a Monday
+    hours = (time - time.normalize()) / pd.Timedelta("1h")
+    cycle = 6 * np.sin(2 * np.pi * np.asarray(hours) / 24) + 3 * (
+        np.asarray(time.day_of_week) >= 5)
+    return time, 40 + cycle + rng.normal(0, noise, periods)
+
+
+def numpy_variability(values, per_day, n_days):
+    """Reference: mean per time of day removed, then mean per day of week, 5-95 % range / 3.29.
+
+    Each step scales the departures by sqrt(n / (n - 1)), n the values per group.
+    """
+    # Source: reference computation with numpy on whole days starting on a Monday (no
+    # pandas groupby); the Normal's 5-95 % range is 2 x 1.6448536 (scipy.stats.norm.ppf(0.95),
+    # value from memory); the n / (n - 1) variance correction is Bessel's.
+    days = values.reshape(n_days, per_day)
+    if per_day > 1:
+        days = (days - days.mean(axis=0)) * np.sqrt(n_days / (n_days - 1))
+    dow = np.arange(n_days) % 7
+    means = np.array([days[dow == d].mean() for d in range(7)])
+    m = (dow == 0).sum() * per_day
+    rest = (days - means[dow][:, None]) * np.sqrt(m / (m - 1))
+    lo, hi = np.quantile(rest, [0.05, 0.95])
+    return (hi - lo) / (2 * 1.6448536269514722)
+
+
+def test_variability_removes_the_daily_and_weekly_cycle_hourly():
+    time, values = cycle_series("h", 24 * 7 * 8, noise=1.5)
+    result = make_panel(values[None, :], ["a"], time, "h")
+    got = float(flags.variability(result).values[0])
+    assert got == pytest.approx(numpy_variability(values, 24, 56), rel=1e-9)
+    assert got == pytest.approx(1.5, rel=0.1)  # the noise sd, the cycles gone
+    raw = np.subtract(*np.quantile(values, [0.95, 0.05])) / 3.29
+    assert raw > 2.5 * got
+    # the reference width at 90 %: exactly the 5-95 % range of the departures
+    rest = flags.deseasonalised(result)["a"].to_numpy()
+    assert float(flags.variability_width(result, 90).values[0]) == pytest.approx(
+        np.subtract(*np.quantile(rest, [0.95, 0.05])), rel=1e-12)
+
+
+def test_variability_of_daily_steps_removes_the_weekly_cycle_only():
+    time = pd.date_range("2024-01-01", periods=7 * 20, freq="D")
+    rng = np.random.default_rng(4)
+    weekly = np.where(np.asarray(time.day_of_week) >= 5, 10.0, 0.0)
+    values = 50 + weekly + rng.normal(0, 2.0, time.size)
+    result = make_panel(values[None, :], ["a"], time, "D")
+    assert float(flags.variability(result).values[0]) == pytest.approx(
+        numpy_variability(values, 1, time.size), rel=1e-9)
+
+
+def test_variability_of_monthly_steps_or_short_records_keeps_every_cycle():
+    time = pd.date_range("2020-01-01", periods=36, freq="MS")
+    values = np.arange(36.0)
+    result = make_panel(values[None, :], ["a"], time, "MS")
+    expected = np.subtract(*np.quantile(values, [0.95, 0.05])) / (2 * 1.6448536269514722)
+    assert float(flags.variability(result).values[0]) == pytest.approx(expected, rel=1e-9)
+    # two days of hourly data: too short to tell a daily cycle from noise
+    time, values = cycle_series("h", 48, noise=0.5)
+    short = make_panel(values[None, :], ["a"], time, "h")
+    expected = np.subtract(*np.quantile(values, [0.95, 0.05])) / (2 * 1.6448536269514722)
+    assert float(flags.variability(short).values[0]) == pytest.approx(expected, rel=1e-9)
+
+
+def test_fills_wider_than_the_series_variability_are_uncertain_by_default():
+    time, values = cycle_series("h", 24 * 7 * 4, noise=1.0)
+    values[[100, 200, 300]] = np.nan
+    result = make_panel(values[None, :], ["a"], time, "h")
+    limit = float(flags.variability_width(result, 90).values[0])
+    width = np.zeros(values.size)
+    width[[100, 200, 300]] = [0.5 * limit, 0.99 * limit, 1.01 * limit]
+    summaries = make_result([values], width90=width)
+    out = flags.assign(summaries)
+    np.testing.assert_array_equal(out["fill_flag"].values[0, [100, 200, 300]],
+                                  [FILL, FILL, UNCERTAIN])
+    assert out["fill_reason"].values[0, 300] == bits_of("wide_vs_variability")
+    # a multiple moves the limit, None turns the rule off
+    out = flags.assign(summaries, max_var_width=0.9)
+    np.testing.assert_array_equal(out["fill_flag"].values[0, [100, 200, 300]],
+                                  [FILL, UNCERTAIN, UNCERTAIN])
+    out = flags.assign(summaries, max_var_width=None)
+    assert (out["fill_flag"].values[0, [100, 200, 300]] == FILL).all()
+    # at another level the limit is that level's Normal interval (1.96 / 1.645 as wide at 97.5 %)
+    # the hand-made 97.5 % interval is 97.5/90 as wide as the 90 % one
+    out = flags.assign(summaries, level=97.5)
+    assert out["fill_flag"].values[0, 300] == FILL
+
+
+def test_width_rules_read_the_model_own_width_where_a_calibration_narrowed():
+    values = row(np.arange(20.0), [5, 12])
+    result = make_result([values], width90=1.0)  # calibrated widths: 1.0
+    own = np.full((1, 20), np.nan)
+    own[0, [5, 12]] = [4.0, 0.5]  # the model's own: wider at 5, narrower at 12 (widened)
+    result[flags.OWN_WIDTH] = xr.DataArray(own, dims=DIMS, attrs={"level": 90.0})
+    out = flags.assign(result, max_width=2.0, max_var_width=None)
+    np.testing.assert_array_equal(out["fill_flag"].values[0, [5, 12]], [UNCERTAIN, FILL])
+    assert out["fill_reason"].values[0, 5] == bits_of("wide_interval")
+    # without the model's own width the narrowed interval would pass
+    plain = flags.assign(result.drop_vars(flags.OWN_WIDTH), max_width=2.0, max_var_width=None)
+    assert plain["fill_flag"].values[0, 5] == FILL
+    # the own width of another level is not read at this one
+    result[flags.OWN_WIDTH].attrs["level"] = 50.0
+    assert flags.assign(result, max_width=2.0, max_var_width=None)["fill_flag"].values[0, 5] \
+        == FILL

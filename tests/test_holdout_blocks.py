@@ -222,7 +222,8 @@ def test_a_block_fill_widens_and_flags_by_the_whole_panels_gap_lengths(panel, pl
         "evidence": {"longest_tested_steps": 100},
         "widening": {"factors": {level: wide for level in LEVELS}}}, path)
     options = dataclasses.replace(
-        OPTIONS, rules=filling.FlagRules(accept_unconverged=True), keep_draws=0)
+        OPTIONS, rules=filling.FlagRules(accept_unconverged=True, max_var_width=None),
+        keep_draws=0)
     plain, _ = parallel.fill_blocks(gappy, plan, model=TINY, options=options)
     widened, summary = parallel.fill_blocks(gappy, plan, model=TINY, options=options,
                                             calibration=path)
@@ -233,5 +234,7 @@ def test_a_block_fill_widens_and_flags_by_the_whole_panels_gap_lengths(panel, pl
                                3.0 * (plain["upper_90"].values[0, core] - median), rtol=1e-9)
     flag = widened["fill_flag"].values
     assert (flag[0, 150:340] == flags.FILLED_UNCERTAIN).all()  # longer than the 100 tested
-    short = np.isnan(values) & (filling.real_gap_length(gappy).values <= 100)
+    ends = flags.extrapolated(gappy).values  # before a first, after a last observation
+    short = np.isnan(values) & (filling.real_gap_length(gappy).values <= 100) & ~ends
     assert (flag[short] == flags.FILLED).all()
+    assert (flag[ends] == flags.NOT_FILLED).all()

@@ -118,7 +118,7 @@ def complete(path: Path) -> bool:
                 return ds["fill_flag"].shape == (len(SERIES), STEPS)
         if path.suffix == ".csv":
             table = pd.read_csv(path)
-            return len(table) == len(SERIES) * STEPS and list(table.columns)[-1] == "flag_code"
+            return len(table) == len(SERIES) * STEPS and list(table.columns)[-1] == "reason"
         return "flags" in json.loads(path.read_text(encoding="utf-8"))
     except (OSError, ValueError, KeyError):
         return False

@@ -27,7 +27,8 @@ def _daily(n_time: int, level: float, amplitude: float, noise: float, seed: int)
 
 
 def _fill(values: np.ndarray, **options):
-    rules = filling.FlagRules(min_observed=options.pop("min_observed", flags.MIN_OBSERVED))
+    rules = filling.FlagRules(min_observed=options.pop("min_observed", flags.MIN_OBSERVED),
+                              extrapolate=options.pop("extrapolate", False))
     return filling.fill(_panel(values), model=options.pop("model", TINY),
                         options=filling.FillOptions(**FAST, rules=rules, **options))
 
@@ -72,7 +73,7 @@ def test_series_with_one_observation_is_flagged_or_filled_with_wide_intervals():
     assert_no_silent_nan(result)
     assert summary["flags"]["series"]["s2"]["not_filled"] == 95
     # Asked to fill it anyway, the one observation gives far wider intervals.
-    result, _ = _fill(values, min_observed=1)
+    result, _ = _fill(values, min_observed=1, extrapolate=True)
     assert_no_silent_nan(result)
     assert _width(result, "s2").min() > max(_width(result, "s0").max(), _width(result, "s1").max())
 
@@ -102,9 +103,12 @@ def test_panel_with_95_percent_missing():
     assert (observed >= flags.MIN_OBSERVED).all(), observed
     result, summary = _fill(values)
     assert_no_silent_nan(result)
-    assert summary["flags"]["overall"]["not_filled"] == 0
+    # only the record's ends are left empty (before a first, after a last observation)
+    reasons = summary["flag_reasons"]["overall"]
+    assert summary["flags"]["overall"]["not_filled"] == reasons["extrapolated"]
+    assert reasons["few_observations"] == reasons["no_fill"] == 0
     # With almost nothing observed, the 90 % intervals are far wider than at the observed noise.
-    assert np.median(_width(result, "s0", 90)) > 2 * 1.645 * 0.3
+    assert np.nanmedian(_width(result, "s0", 90)) > 2 * 1.645 * 0.3
 
 
 def test_too_few_observations_everywhere_is_a_clear_message():

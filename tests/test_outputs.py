@@ -17,7 +17,7 @@ LEVELS = ("97.5", "50", "90", "80")  # deliberately out of order
 TABLE_COLUMNS = [
     "time", "series", "units", "observed", "filled", "sd",
     "lower_50", "upper_50", "lower_80", "upper_80",
-    "lower_90", "upper_90", "lower_97.5", "upper_97.5", "flag", "flag_code",
+    "lower_90", "upper_90", "lower_97.5", "upper_97.5", "flag", "flag_code", "reason",
 ]
 
 
@@ -137,7 +137,7 @@ def test_csv_time_is_iso_8601_and_empty_cells_are_blank(result, tmp_path):
     lines = path.read_text(encoding="utf-8").splitlines()
     assert lines[0] == ",".join(TABLE_COLUMNS)
     assert lines[1].startswith("2024-03-30T22:00:00,north,µg m-3,-0.0,-0.0,,,")
-    assert lines[1].endswith(",observed,0")
+    assert lines[1].endswith(",observed,0,")
     back = pd.read_csv(path, dtype={"time": str})
     assert back["time"].iloc[2] == "2024-03-31T00:00:00"
 

@@ -21,6 +21,7 @@ from rich.table import Table
 import gapband
 from gapband.chains import DEFAULT_CHAINS, TIME_BUDGET
 from gapband.errors import FitError, GapbandError, InputError, Interrupted, SpecError, UsageError
+from gapband.flags import MAX_VAR_WIDTH, MIN_OBSERVED
 from gapband.holdout import DEFAULT_FRACTION, DEFAULT_MAX_REPEATS, DEFAULT_SCHEME, SCHEMES
 from gapband.stats import DEFAULT_LEVEL, DEFAULT_MIN_CAPTURE, OVERS, PERIODS
 
@@ -158,7 +159,8 @@ def model_options(command):
         click.option("--levels", callback=parse_levels, default="50,80,90,95",
                      show_default=True, help="Central credible-interval levels in percent."),
         click.option("--seed", type=int, default=0, show_default=True, help="Random seed."),
-        click.option("--min-observed", type=click.IntRange(1), default=10, show_default=True,
+        click.option("--min-observed", type=click.IntRange(1), default=MIN_OBSERVED,
+                     show_default=True,
                      help="Series with fewer observations are not filled."),
         click.option("--quiet", is_flag=True, help="No progress bars."),
     ]
@@ -249,6 +251,10 @@ def plan_and_runner(panel, model, given: dict) -> tuple:
               help="Flag a fill uncertain when its interval is wider than this (data units).")
 @click.option("--max-rel-width", type=click.FloatRange(0, min_open=True),
               help="... or wider than this times the series' 5-95 % observed range.")
+@click.option("--max-var-width", default=f"{MAX_VAR_WIDTH:g}", show_default=True,
+              metavar="R|off", callback=lambda ctx, param, text: parse_multiple(text),
+              help="... or wider than R times the interval the series' own variability around "
+              "its daily and weekly cycle gives at that level ('off': no such rule).")
 @click.option("--max-gap", metavar="DURATION",
               help="Flag fills in gaps longer than DURATION (e.g. '72h') uncertain.")
 @click.option("--accept-unconverged", is_flag=True,
@@ -257,6 +263,9 @@ def plan_and_runner(panel, model, given: dict) -> tuple:
 @click.option("--flag-untested/--no-flag-untested", default=True, show_default=True,
               help="With --calibration: flag fills in gaps longer than the holdout tested "
               "filled_uncertain.")
+@click.option("--extrapolate", is_flag=True,
+              help="Fill the cells before a series' first or after its last observation, "
+              "flagged filled_uncertain (by default they are not filled).")
 @click.option("--table", type=click.Choice(["csv", "parquet"]), default="csv",
               show_default=True, help="Format of the long table.")
 @click.option("--causes", "causes_path", type=click.Path(path_type=Path), metavar="CSV",
@@ -272,19 +281,22 @@ def plan_and_runner(panel, model, given: dict) -> tuple:
 @block_options
 @click.option("--overwrite", is_flag=True, help="Replace existing outputs in --out.")
 @handle_errors
-def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width, max_gap,
-         accept_unconverged, flag_untested, table, causes_path, decimals, keep_draws,
-         overwrite, **kw):
+def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width, max_var_width,
+         max_gap, accept_unconverged, flag_untested, extrapolate, table, causes_path, decimals,
+         keep_draws, overwrite, **kw):
     """Fill every missing cell of INPUT with a credible interval and a flag."""
     from gapband import filling
     from gapband.outputs import prepare_dir
 
     model, transform, options = fill_settings(kw, level=flag_level, max_width=max_width,
-                                              max_rel_width=max_rel_width, max_gap=max_gap,
+                                              max_rel_width=max_rel_width,
+                                              max_var_width=max_var_width, max_gap=max_gap,
                                               accept_unconverged=accept_unconverged,
-                                              flag_untested=flag_untested)
+                                              flag_untested=flag_untested,
+                                              extrapolate=extrapolate)
     options.keep_draws = keep_draws
-    filling.check_levels(tuple(options.levels))  # before the output folder is made
+    # before the output folder is made
+    filling.check_flag_level(options.rules, filling.check_levels(tuple(options.levels)))
     blocks = block_settings(kw)
     prepare_dir(out_dir, ["filled.nc", f"filled.{table}", "summary.json"], overwrite)
     panel = gapband.read(input_path, **kw)
@@ -317,8 +329,25 @@ def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width,
     console.print(
         "cells: " + ", ".join(f"{n} {meaning}" for meaning, n in counts.items()), highlight=False
     )
+    reasons = {name: n for name, n in summary["flag_reasons"]["overall"].items() if n}
+    if reasons:
+        console.print("flagged because: " + ", ".join(f"{n} {name}" for name, n in
+                                                       reasons.items()), highlight=False)
     for path in written:
         console.print(f"wrote {path}", highlight=False)
+
+
+def parse_multiple(text: str) -> float | None:
+    """``--max-var-width``: a positive number, or 'off' for no such rule."""
+    if text.strip().lower() == "off":
+        return None
+    try:
+        number = float(text)
+    except ValueError:
+        number = math.nan
+    if not math.isfinite(number) or number <= 0:
+        raise click.BadParameter(f"use a positive number or 'off', not {text!r}")
+    return number
 
 
 def parse_decimals(text: str) -> int | str:

@@ -51,12 +51,23 @@ class FlagRules:
     level: float = 90
     max_width: float | None = None
     max_rel_width: float | None = None
+    #: Multiple of the interval the series' variability around its daily and
+    #: weekly cycle gives (:func:`gapband.flags.variability_width`); None: off.
+    max_var_width: float | None = flags.MAX_VAR_WIDTH
     max_gap: str | None = None
     min_observed: int = flags.MIN_OBSERVED
     #: Keep the fills of a fit whose chains did not converge as ``filled``.
     accept_unconverged: bool = False
     #: With a calibration: flag fills in gaps longer than its holdout tested.
     flag_untested: bool = True
+    #: Fill the cells before a series' first or after its last observation
+    #: (flagged uncertain, reason ``extrapolated``); by default they stay empty.
+    extrapolate: bool = False
+
+    def width_rules(self) -> bool:
+        """Whether any rule reads the interval width (and so needs ``level`` computed)."""
+        return any(r is not None for r in (self.max_width, self.max_rel_width,
+                                           self.max_var_width))
 
 
 @dataclass
@@ -138,6 +149,7 @@ def fill(
     options: FillOptions | None = None,
     calibration: str | Path | Calibration | None = None,
     gap_length: xr.DataArray | None = None,
+    outside: xr.DataArray | None = None,
 ) -> tuple[xr.Dataset, dict]:
     """Fill every missing cell of a Panel from the posterior predictive.
 
@@ -164,12 +176,19 @@ def fill(
     gap_length : DataArray of int, dims (series, time), optional
         Length of the real missing run each cell sits in; default: the
         Panel's own. A block of a larger Panel passes the whole Panel's.
+    outside : DataArray of bool, dims (series, time), optional
+        Cells before a series' first or after its last observation
+        (:func:`gapband.flags.extrapolated`); default: the Panel's own. A
+        block of a larger Panel passes the whole Panel's.
 
     Returns
     -------
     result : Dataset
         The Panel plus ``filled``, ``fill_mean``, ``fill_median``,
-        ``fill_sd``, ``lower_<L>``/``upper_<L>`` and ``fill_flag``, the
+        ``fill_sd``, ``lower_<L>``/``upper_<L>``, ``fill_flag`` and
+        ``fill_reason`` (with a calibration also
+        :data:`gapband.flags.OWN_WIDTH`, the model's own width at the flag
+        level, which the width rules read when it is the larger), the
         component contributions ``component_<name>`` and ``component_offset``
         (:func:`component_means`), and unless ``options.keep_draws`` is 0 the
         joint draws ``fill_draws`` (:func:`joint_draws`), with provenance
@@ -195,13 +214,7 @@ def fill(
     if isinstance(keep, bool) or not isinstance(keep, int | np.integer) or keep < 0:
         raise UsageError(f"keep_draws = {keep!r} must be a whole number, 0 or more "
                          "(--keep-draws; 0 keeps none)")
-    if options.rules.level not in levels and (
-        options.rules.max_width is not None or options.rules.max_rel_width is not None
-    ):
-        raise UsageError(
-            f"the flag rule looks at the {options.rules.level:g} % interval, which is not "
-            f"among the levels {list(levels)}; add it to --levels or change --flag-level"
-        )
+    check_flag_level(options.rules, levels)
     spec, spec_label = resolve_spec(panel, model, transform)
     widening, calibration_warning = (None, None) if calibration is None else (
         (calibration, None) if isinstance(calibration, Calibration)
@@ -215,15 +228,18 @@ def fill(
     summaries = predict.summarise(fitted.fit, fitted.panel, levels=levels, seed=options.seed,
                                   progress=options.progress)
     if widening is not None:
+        own = own_width(summaries, options.rules.level, levels)
         summaries = widen(summaries, widening, levels,
                           gap_length.sel(series=fitted.panel["series"]))
+        if own is not None:
+            summaries[flags.OWN_WIDTH] = own
 
     result = panel.merge(summaries.drop_vars("value"), join="left")
     unusable = int(flags.no_fill(result).sel(series=fitted.panel["series"]).sum())
     result = flags.assign(result, **dataclasses.asdict(options.rules),
                           unconverged=not fitted.fit.diagnostics["converged"],
                           tested_gap=None if widening is None else widening.longest_tested,
-                          gap_length=gap_length)
+                          gap_length=gap_length, outside=outside)
     result = result.merge(component_means(fitted, panel))
     if options.keep_draws:
         draws = joint_draws(fitted, result, options.keep_draws, options.seed)
@@ -251,6 +267,43 @@ def fill(
     return result, summary
 
 
+def check_flag_level(rules: FlagRules, levels: tuple[float, ...]) -> None:
+    """Refuse width rules that look at an interval level the fill does not compute.
+
+    Raises
+    ------
+    UsageError
+        Saying the three ways out.
+    """
+    if rules.width_rules() and rules.level not in levels:
+        raise UsageError(
+            f"the flag rule looks at the {rules.level:g} % interval, which is not among the "
+            f"levels {list(levels)}; add it to --levels or change --flag-level (or turn the "
+            "width rules off: the default one with --max-var-width off)"
+        )
+
+
+def own_width(summaries: xr.Dataset, level: float,
+              levels: tuple[float, ...]) -> xr.DataArray | None:
+    """The model's own width of the ``level`` % interval, kept before a calibration.
+
+    Stored as :data:`gapband.flags.OWN_WIDTH` so the width rules never read a
+    width a calibration narrowed below the model's own; None when ``level``
+    is not computed.
+    """
+    if level not in levels:
+        return None
+    key = f"{level:g}".replace(".", "_")
+    if f"upper_{key}" not in summaries or f"lower_{key}" not in summaries:
+        return None
+    width = summaries[f"upper_{key}"] - summaries[f"lower_{key}"]
+    width.attrs = {"long_name": f"width of the central {level:g}% posterior predictive "
+                   "interval before calibration (the model's own)", "level": float(level),
+                   "comment": "the flag rules on interval width read the larger of this and "
+                   "the calibrated width"}
+    return width
+
+
 def record_run(result: xr.Dataset, panel: xr.Dataset, spec: ModelSpec, spec_label: str,
                options: FillOptions, levels: tuple[float, ...], method: str, diagnostics: dict,
                widening: Calibration | None, timings: dict) -> dict:
@@ -276,6 +329,7 @@ def record_run(result: xr.Dataset, panel: xr.Dataset, spec: ModelSpec, spec_labe
         "joint_draws": int(result.sizes.get("fill_draw", 0)),
         "capture": capture_before_after(result),
         "flags": flags.flag_counts(result),
+        "flag_reasons": flags.reason_counts(result),
         "diagnostics": diagnostics,
         "timings": timings,
         "versions": versions(),

@@ -688,7 +688,11 @@ def _refit_in_blocks(masked: xr.Dataset, plan: BlockPlan, spec: ModelSpec,
     from gapband.parallel import fill_blocks
 
     started = time.perf_counter()
-    result, summary = fill_blocks(masked, plan, model=spec, options=options, runner=runner)
+    # Every hidden cell is scored, at the record's ends too; flags play no part here.
+    scoring = dataclasses.replace(options, rules=dataclasses.replace(
+        options.rules, extrapolate=True, max_width=None, max_rel_width=None,
+        max_var_width=None))
+    result, summary = fill_blocks(masked, plan, model=spec, options=scoring, runner=runner)
     runs = summary["blocks"]["runs"]
     return result, {"blocks": {
         "seconds": round(time.perf_counter() - started, 2),

@@ -28,7 +28,7 @@ import pandas as pd
 import xarray as xr
 
 from gapband.errors import InputError, UsageError
-from gapband.flags import FLAG_MEANINGS, interval_levels
+from gapband.flags import FLAG_MEANINGS, OWN_WIDTH, interval_levels, reason_names
 
 CONVENTIONS = "CF-1.10"
 
@@ -38,6 +38,8 @@ _LONG_NAMES = {
     "fill_mean": "posterior predictive mean",
     "fill_median": "posterior predictive median",
     "fill_sd": "posterior predictive standard deviation",
+    OWN_WIDTH: "width of the flag level's central posterior predictive interval before "
+               "calibration",
 }
 _TABLE_SUFFIXES = (".csv", ".parquet")
 
@@ -201,10 +203,11 @@ def long_table(result: xr.Dataset, decimals: int | str = "input") -> pd.DataFram
     """Return the result as a long table, one row per cell, series by series.
 
     Columns: ``time, series, units, observed, filled, sd, lower_<L>, upper_<L>``
-    (per level, increasing), ``flag`` (the flag meaning as text) and
-    ``flag_code`` (its number, as in filled.nc). ``sd`` and the bounds are
-    empty for observed and not-filled cells; ``units`` is empty when the
-    input did not state them.
+    (per level, increasing), ``flag`` (the flag meaning as text),
+    ``flag_code`` (its number, as in filled.nc) and ``reason`` (the reasons
+    of ``fill_reason`` as words joined by ``;``, empty for observed cells
+    and plain fills). ``sd`` and the bounds are empty for observed and
+    not-filled cells; ``units`` is empty when the input did not state them.
 
     ``decimals``: ``"input"`` rounds each series' fills and bounds to the
     resolution of its observed values (:func:`input_decimals`; the sd gets
@@ -239,6 +242,8 @@ def long_table(result: xr.Dataset, decimals: int | str = "input") -> pd.DataFram
         columns[f"upper_{level}"] = fill_only(f"upper_{level}")
     columns["flag"] = np.asarray(FLAG_MEANINGS)[codes]
     columns["flag_code"] = codes
+    columns["reason"] = (reason_names(ds["fill_reason"].values.ravel()) if "fill_reason" in ds
+                         else np.full(codes.size, "", dtype=object))
     return pd.DataFrame(columns)
 
 
@@ -384,7 +389,7 @@ def _cf_dataset(result: xr.Dataset) -> xr.Dataset:
 
 
 def _is_fill_variable(name: str) -> bool:
-    return name != "fill_flag" and (
+    return name not in ("fill_flag", "fill_reason") and (
         name == "filled" or name.startswith(("fill_", "lower_", "upper_"))
     )
 

@@ -46,6 +46,7 @@ from gapband.calibration import Calibration
 from gapband.errors import FitError, GapbandError, InputError, UsageError
 from gapband.filling import (
     FillOptions,
+    check_flag_level,
     check_levels,
     checked_calibration,
     fill,
@@ -453,13 +454,16 @@ class BlockJob:
     calibration: Calibration | None
     #: Length of the whole Panel's missing run each cell of the block sits in.
     gap_length: xr.DataArray
+    #: Cells before the first or after the last observation of the whole Panel's series.
+    outside: xr.DataArray | None = None
 
     def __call__(self, attempt: int = 1) -> BlockOutcome:
         """Fill the block and keep its core; an exception is returned, not raised."""
         started = time.perf_counter()
         try:
             result, summary = fill(self.panel, model=self.spec, options=self.options,
-                                   calibration=self.calibration, gap_length=self.gap_length)
+                                   calibration=self.calibration, gap_length=self.gap_length,
+                                   outside=self.outside)
             core, draws = self._core(result)
         except Exception as exc:  # reported by name; the other blocks go on
             return self.failed(attempt, exc, time.perf_counter() - started)
@@ -648,11 +652,13 @@ def fill_blocks(
     options = options or FillOptions()
     runner = runner or InProcess()
     levels = check_levels(tuple(options.levels))
+    check_flag_level(options.rules, levels)
     spec, spec_label = resolve_spec(panel, model, transform)
     plan.check(panel, spec)
     widening, calibration_warning = (None, None) if calibration is None else \
         checked_calibration(calibration, panel, spec, options.method, levels)
     gap_length = real_gap_length(panel)
+    outside = flags.extrapolated(panel)
     if options.rank is None:
         options = dataclasses.replace(
             options, rank=whole_panel_rank(panel, spec, options.rules.min_observed))
@@ -670,7 +676,8 @@ def fill_blocks(
                                               f"block {block.name}"}
         block_options = dataclasses.replace(options, seed=options.seed + i, progress=False)
         jobs.append(BlockJob(block, sub, panel.sizes["time"], spec, block_options, widening,
-                             gap_length.isel(series=rows, time=slice(start, stop))))
+                             gap_length.isel(series=rows, time=slice(start, stop)),
+                             outside.isel(series=rows, time=slice(start, stop))))
         positions.append(i)
     ran = _run(runner, jobs, options.progress) if jobs else []
     outcomes |= dict(zip(positions, ran, strict=True))
@@ -756,7 +763,8 @@ def _merge(panel: xr.Dataset, blocks: list[Block], outcomes: list[BlockOutcome],
     filled = [(b, o) for b, o in zip(blocks, outcomes, strict=True) if o.status == "filled"]
     template = filled[0][1].core
     names = [str(n) for n, v in template.data_vars.items()
-             if v.dims == ("series", "time") and n not in ("value", "filled", "fill_flag")]
+             if v.dims == ("series", "time")
+             and n not in ("value", "filled", "fill_flag", "fill_reason")]
     shape = (panel.sizes["series"], panel.sizes["time"])
     merged = {name: np.full(shape, np.nan) for name in names}
     offset = np.full(shape[0], np.nan)

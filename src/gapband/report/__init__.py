@@ -77,6 +77,7 @@ def render(
         "log": content.substitution_log(result, method),
         "series": content.series_figures(result, units),
         "flags": content.flag_counts(summary),
+        "reasons": content.reason_counts(summary),
         "stats": content.period_statistics(result, period),
         "holdout": (content.holdout(holdout_report, summary.get("input_sha256"), units)
                     if holdout_report else None),

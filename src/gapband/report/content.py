@@ -86,8 +86,12 @@ def use_verdict(summary: dict) -> tuple[bool, str]:
         text += " (rules: " + "; ".join(f"{label} {value}" for label, value in reasons) + ")"
     text += "."
     if missing:
-        text += (f" {missing} could not be filled (a series with too few observations, or "
-                 "no finite prediction; see the flag counts).")
+        why = {name: n for name, n in (summary.get("flag_reasons") or {}).get("overall", {})
+               .items() if n and name in ("extrapolated", "few_observations", "no_fill")}
+        text += (f" {missing} were not filled ("
+                 + (", ".join(f"{n} {REASON_WORDS[name]}" for name, n in why.items()) if why
+                    else "a series with too few observations, or no finite prediction")
+                 + "; see the flag counts).")
     return uncertain == 0 and missing == 0, text
 
 
@@ -100,6 +104,10 @@ def rule_rows(rules: dict) -> list[tuple[str, str]]:
     if rules.get("max_rel_width") is not None:
         rows.append((f"{level:g} % interval wider than",
                      f"{rules['max_rel_width']:g} × the series' 5–95 % range"))
+    if rules.get("max_var_width") is not None:
+        rows.append((f"{level:g} % interval wider than",
+                     f"{rules['max_var_width']:g} × the {level:g} % interval of the series' "
+                     "variability around its daily and weekly cycle"))
     if rules.get("max_gap"):
         rows.append(("gap longer than", str(rules["max_gap"])))
     if rules.get("min_observed") is not None:
@@ -110,7 +118,35 @@ def rule_rows(rules: dict) -> list[tuple[str, str]]:
     if "accept_unconverged" in rules:
         rows.append(("fit not converged", "kept as filled" if rules["accept_unconverged"]
                      else "flagged uncertain"))
+    if "extrapolate" in rules:
+        rows.append(("before a series' first or after its last observation",
+                     "filled, flagged uncertain" if rules["extrapolate"] else "not filled"))
     return rows
+
+
+#: Each flag reason in a few words, for the report's sentences.
+REASON_WORDS = {
+    "extrapolated": "before a series' first or after its last observation",
+    "few_observations": "in a series with too few observations",
+    "no_fill": "without a usable prediction",
+    "not_converged": "from a fit whose chains did not agree",
+    "untested_gap": "in gaps longer than the holdout tested",
+    "long_gap": "in gaps longer than the gap rule allows",
+    "wide_interval": "with intervals wider than the set width",
+    "wide_vs_range": "with intervals wider than the set share of the series' range",
+    "wide_vs_variability": "with intervals wider than the series' variability around its "
+                           "cycle gives",
+}
+
+
+def reason_counts(summary: dict) -> dict | None:
+    """Cells per flag reason, overall and per series, the reasons that occur only."""
+    counts = summary.get("flag_reasons")
+    if not counts:
+        return None
+    names = [name for name, n in counts["overall"].items() if n]
+    return {"names": names, "words": {name: REASON_WORDS.get(name, name) for name in names},
+            "overall": counts["overall"], "series": counts["series"]}
 
 
 def provenance(result: xr.Dataset, summary: dict) -> dict:
@@ -207,6 +243,8 @@ def substitution_log(result: xr.Dataset, method: str) -> dict:
     """
     flag = result["fill_flag"].transpose("series", "time").values
     filled = (flag == flags.FILLED) | (flag == flags.FILLED_UNCERTAIN)
+    reason = (result["fill_reason"].transpose("series", "time").values.astype("int64")
+              if "fill_reason" in result else None)
     level = widest_level(result)
     values = result["value"].transpose("series", "time").values
     median = result["filled"].transpose("series", "time").values
@@ -223,6 +261,7 @@ def substitution_log(result: xr.Dataset, method: str) -> dict:
             "series": names[s], "start": _stamp(times[start]),
             "end": _stamp(times[start + length - 1]), "cells": length,
             "uncertain": int((flag[s, run] == flags.FILLED_UNCERTAIN).sum()),
+            "reasons": "" if reason is None else _reasons_text(reason[s, run]),
             "mean": float(np.mean(median[s, run])),
             "lower": None if draws is None else float(np.quantile(draws, share / 2)),
             "upper": None if draws is None else float(np.quantile(draws, 1 - share / 2)),
@@ -231,6 +270,13 @@ def substitution_log(result: xr.Dataset, method: str) -> dict:
         })
     return {"level": level.replace("_", ".") if level else None, "rows": rows,
             "method": method}
+
+
+def _reasons_text(bits: np.ndarray) -> str:
+    """The flag reasons among a run's cells, each with its count of cells."""
+    return ", ".join(f"{name} ({n})" for name, mask in zip(flags.REASON_NAMES,
+                                                           flags.REASON_MASKS, strict=True)
+                     if (n := int(((bits & int(mask)) != 0).sum())))
 
 
 def _run_mean_draws(result: xr.Dataset, shape: tuple[int, int]):
