@@ -30,8 +30,8 @@ was not filled; a ``filled_uncertain`` cell every rule that caught it.
 from __future__ import annotations
 
 import re
-from collections.abc import Iterable
 import warnings
+from collections.abc import Iterable
 from datetime import timedelta
 from statistics import NormalDist
 
@@ -91,6 +91,8 @@ REASON_NAMES: tuple[str, ...] = tuple(name for name, _ in REASONS)
 REASON_MASKS = (2 ** np.arange(len(REASONS))).astype("int16")
 #: Separator of the reasons in the long table's ``reason`` column.
 REASON_SEPARATOR = ";"
+#: What ``value`` and ``filled`` name as their ancillary variables.
+ANCILLARY = "fill_flag fill_reason"
 
 _LEVEL_NAME = re.compile(r"^lower_(\d+(?:\.\d+)?)$")
 _SUMMARY_PREFIXES = ("fill_", "lower_", "upper_")
@@ -405,10 +407,6 @@ def assign(
                    + "; ".join(f"{name}: {text}" for name, text in REASONS),
     }
     return out
-
-
-#: What ``value`` and ``filled`` name as their ancillary variables.
-ANCILLARY = "fill_flag fill_reason"
 
 
 def _reason_bits(fired: dict[str, xr.DataArray], flag: xr.DataArray) -> xr.DataArray:
