@@ -205,7 +205,7 @@ def test_fills_in_gaps_longer_than_tested_are_flagged(files, holdout_run, tmp_pa
     short.write_text(json.dumps(report), encoding="utf-8")
     result = CliRunner().invoke(cli, ["fill", str(csv), "--out", str(tmp_path / "o"),
                                       "--model", str(model), "--calibration", str(short), *FAST,
-                                      "--accept-unconverged"])
+                                      "--accept-unconverged", "--max-var-width", "off"])
     assert result.exit_code == 0, result.output
     with xr.open_dataset(tmp_path / "o" / "filled.nc") as ds:
         lengths = filling.real_gap_length(ds).values

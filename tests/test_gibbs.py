@@ -257,7 +257,9 @@ def test_student_t_noise_runs_and_weights_observed_cells():
 
 def test_fill_with_gibbs_leaves_observed_cells_unchanged():
     panel, truth, hidden = _simulated(seed=3, n_time=96)
-    options = filling.FillOptions(method="gibbs", draws=60, tune=30, seed=2, progress=False)
+    # Hidden cells at a record's ends are filled too (they are not, by default).
+    options = filling.FillOptions(method="gibbs", draws=60, tune=30, seed=2, progress=False,
+                                  rules=filling.FlagRules(extrapolate=True))
     result, summary = filling.fill(panel, model=spec.parse(SIMPLE), options=options)
     observed = ~hidden
     np.testing.assert_array_equal(result["filled"].values[observed], truth[observed])
