@@ -53,7 +53,7 @@ def test_output_ends_with_the_reports_and_three_headline_figures(demo):
         assert f"report ({name}): {out / name / 'report.html'}" in text
         assert figures["report"] == str(out / name / "report.html")
         truth = figures["truth"]["overall"]
-        for shown in (f"{figures['holdout']['coverage_90']:.3f}", f"{truth['mae']:.3g}",
+        for shown in (f"{figures['holdout']['coverage_90']:.1%}", f"{truth['mae']:.3g}",
                       f"{truth['mae_linear']:.3g}", str(figures["filled_uncertain"])):
             assert shown in text
     for header in ("held-out coverage 90 %", "MAE of fills", "MAE linear interp.",

@@ -686,8 +686,8 @@ def demo_table(headline: dict, level: float) -> Table:
         truth = figures["truth"]["overall"]
         table.add_row(
             f"{escape(quantity)} ({escape(figures['units'])})",
-            _number(figures["holdout"]["coverage_90"], ".3f"),
-            _number(truth["coverage_90"], ".3f"),
+            _number(figures["holdout"]["coverage_90"], ".1%"),
+            _number(truth["coverage_90"], ".1%"),
             _number(truth["mae"], ".3g"), _number(truth["mae_linear"], ".3g"),
             str(figures["filled_uncertain"]),
         )
