@@ -484,3 +484,18 @@ def test_a_bucket_with_real_gaps_and_no_hidden_cell_is_reported_untested():
     assert found["buckets"]["1"]["status"] == "no gaps"
     assert found["longest_real_steps"] == 200 and found["longest_tested_steps"] == 3
     assert found["note"] is None
+
+
+def test_gaps_at_a_record_end_count_as_real_fills_only_when_they_are_filled():
+    values = np.ones((2, 600))
+    values[0, :40] = np.nan      # before the first observation: 40 steps, bucket 25-168
+    values[0, 300:304] = np.nan  # interior: 4 steps, bucket 2-6
+    values[1, 590:] = np.nan     # after the last observation: 10 steps, bucket 7-24
+    panel = make_panel(values, ["a", "b"],
+                       pd.date_range("2000-01-01", periods=600, freq="h"), "h")
+    by_default = holdout._real_gaps(panel, min_observed=10)
+    assert by_default["2-6"] == {"runs": 1, "cells": 4, "longest": 4}
+    assert by_default["25-168"]["runs"] == by_default["7-24"]["runs"] == 0
+    filled_too = holdout._real_gaps(panel, min_observed=10, extrapolate=True)
+    assert filled_too["25-168"] == {"runs": 1, "cells": 40, "longest": 40}
+    assert filled_too["7-24"] == {"runs": 1, "cells": 10, "longest": 10}

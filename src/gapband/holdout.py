@@ -258,7 +258,7 @@ def run(
              repeats, "" if plan is None else f", {len(plan.blocks)} blocks each", spec_label)
     truth = panel["value"].transpose("series", "time").values
     n_time = panel.sizes["time"]
-    real = _real_gaps(panel, options.rules.min_observed)
+    real = _real_gaps(panel, options.rules.min_observed, options.rules.extrapolate)
     predictors = (PREDICTOR, *baseline_names)
     pooled: dict[str, list[dict]] = {name: [] for name in predictors}
     # per repeat: scored cells' series, missing-run length and run id
@@ -599,13 +599,19 @@ def _place_bucket(observed: np.ndarray, hidden: np.ndarray, room: np.ndarray,
     return count
 
 
-def _real_gaps(panel: xr.Dataset, min_observed: int) -> dict:
-    """Per gap-length bucket, the real missing runs of the series a fill fills: runs, cells."""
+def _real_gaps(panel: xr.Dataset, min_observed: int, extrapolate: bool = False) -> dict:
+    """Per gap-length bucket, the real missing runs a fill fills: runs, cells.
+
+    Runs before a series' first or after its last observation count only
+    with ``extrapolate`` (by default a fill leaves them empty).
+    """
     missing = panel["value"].transpose("series", "time").isnull().values
+    n_time = missing.shape[1]
     filled = (~missing).sum(axis=1) >= min_observed
     found = {label: {"runs": 0, "cells": 0, "longest": 0} for label in BUCKETS}
-    for n, _, length in gap_runs(missing):
-        if filled[n]:
+    for n, start, length in gap_runs(missing):
+        at_an_end = start == 0 or start + length == n_time
+        if filled[n] and (extrapolate or not at_an_end):
             record = found[BUCKETS[int(bucket_of(np.array([length]))[0])]]
             record["runs"] += 1
             record["cells"] += length
