@@ -493,13 +493,13 @@ def flag_counts(result: xr.Dataset) -> dict:
     """
     _require(result, ["fill_flag"])
     flag = result["fill_flag"].transpose("series", "time").values
+
     def count(cells: np.ndarray) -> dict[str, int]:
         return {
             m: int((cells == v).sum()) for m, v in zip(FLAG_MEANINGS, FLAG_VALUES, strict=True)
         }
 
-    per_series = {str(name): count(flag[i]) for i, name in enumerate(result["series"].values)}
-    return {"overall": count(flag), "series": per_series}
+    return _overall_and_per_series(result, flag, count)
 
 
 def reason_counts(result: xr.Dataset) -> dict:
@@ -520,8 +520,13 @@ def reason_counts(result: xr.Dataset) -> dict:
         return {name: int(((cells & int(mask)) != 0).sum())
                 for name, mask in zip(REASON_NAMES, REASON_MASKS, strict=True)}
 
-    per_series = {str(name): count(bits[i]) for i, name in enumerate(result["series"].values)}
-    return {"overall": count(bits), "series": per_series}
+    return _overall_and_per_series(result, bits, count)
+
+
+def _overall_and_per_series(result: xr.Dataset, cells: np.ndarray, count) -> dict:
+    """``count`` of all cells (series, time) and of each series' row, keyed by series id."""
+    per_series = {str(name): count(cells[i]) for i, name in enumerate(result["series"].values)}
+    return {"overall": count(cells), "series": per_series}
 
 
 def _width(result: xr.Dataset, level: float) -> xr.DataArray:
