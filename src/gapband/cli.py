@@ -252,7 +252,7 @@ def plan_and_runner(panel, model, given: dict) -> tuple:
 @click.option("--max-rel-width", type=click.FloatRange(0, min_open=True),
               help="... or wider than this times the series' 5-95 % observed range.")
 @click.option("--max-var-width", default=f"{MAX_VAR_WIDTH:g}", show_default=True,
-              metavar="R|off", callback=lambda ctx, param, text: parse_multiple(text),
+              metavar="R|off", callback=lambda ctx, param, text: parse_width_multiple(text),
               help="... or wider than R times the interval the series' own variability around "
               "its daily and weekly cycle gives at that level ('off': no such rule).")
 @click.option("--max-gap", metavar="DURATION",
@@ -337,7 +337,7 @@ def fill(input_path, out_dir, calibration, flag_level, max_width, max_rel_width,
         console.print(f"wrote {path}", highlight=False)
 
 
-def parse_multiple(text: str) -> float | None:
+def parse_width_multiple(text: str) -> float | None:
     """``--max-var-width``: a positive number, or 'off' for no such rule."""
     if text.strip().lower() == "off":
         return None
