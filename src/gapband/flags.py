@@ -514,13 +514,15 @@ def reason_counts(result: xr.Dataset) -> dict:
         with every reason present (zero counts included).
     """
     _require(result, ["fill_reason"])
-    bits = result["fill_reason"].transpose("series", "time").values.astype("int64")
+    bits = result["fill_reason"].transpose("series", "time").values
+    return _overall_and_per_series(result, bits, cells_per_reason)
 
-    def count(cells: np.ndarray) -> dict[str, int]:
-        return {name: int(((cells & int(mask)) != 0).sum())
-                for name, mask in zip(REASON_NAMES, REASON_MASKS, strict=True)}
 
-    return _overall_and_per_series(result, bits, count)
+def cells_per_reason(codes: np.ndarray) -> dict[str, int]:
+    """How many of the ``fill_reason`` codes carry each reason (every reason, zeros included)."""
+    codes = np.asarray(codes).astype("int64")
+    return {name: int(((codes & int(mask)) != 0).sum())
+            for name, mask in zip(REASON_NAMES, REASON_MASKS, strict=True)}
 
 
 def _overall_and_per_series(result: xr.Dataset, cells: np.ndarray, count) -> dict:

@@ -274,9 +274,7 @@ def substitution_log(result: xr.Dataset, method: str) -> dict:
 
 def _reasons_text(bits: np.ndarray) -> str:
     """The flag reasons among a run's cells, each with its count of cells."""
-    return ", ".join(f"{name} ({n})" for name, mask in zip(flags.REASON_NAMES,
-                                                           flags.REASON_MASKS, strict=True)
-                     if (n := int(((bits & int(mask)) != 0).sum())))
+    return ", ".join(f"{name} ({n})" for name, n in flags.cells_per_reason(bits).items() if n)
 
 
 def _run_mean_draws(result: xr.Dataset, shape: tuple[int, int]):
